@@ -1,0 +1,1 @@
+//! k nearest neighbours: in space and in feature space.

@@ -1,0 +1,1 @@
+//! Training on a parts bin: scans on disk, split, augmentation, the train loop, metrics.

@@ -1,0 +1,1 @@
+//! The networks: layers with hand-written forward and backward passes, presets, model file.

@@ -1,0 +1,1 @@
+//! The clean-up recipe: from a raw scan in mm to a prepared cloud that keeps the part's true size.
