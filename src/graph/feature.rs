@@ -1,0 +1,1 @@
+//! k nearest neighbours in feature space: blocked distance matrix and partial selection.
