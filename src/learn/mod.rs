@@ -1,8 +1,10 @@
 //! Training on a parts bin: scans on disk, split, augmentation, the train loop, metrics.
 
+mod augment;
 mod bin;
 mod split;
 
+pub use augment::Augmentation;
 pub use bin::{
     scan_bin, BinError, BinWarning, LabelledScan, MoveRecord, PartsBin, SkipReason,
     IMBALANCE_RATIO, MIN_SCANS_PER_TYPE, SET_ASIDE_FOLDER,
