@@ -2,11 +2,16 @@
 
 mod augment;
 mod bin;
+mod calibrate;
 mod split;
 
 pub use augment::Augmentation;
 pub use bin::{
     scan_bin, BinError, BinWarning, LabelledScan, MoveRecord, PartsBin, SkipReason,
     IMBALANCE_RATIO, MIN_SCANS_PER_TYPE, SET_ASIDE_FOLDER,
+};
+pub use calibrate::{
+    fit_temperature, review_threshold, Calibration, CalibrationError, HoldoutScores,
+    DEFAULT_TARGET_PRECISION,
 };
 pub use split::{holdout_split, HoldoutShareError, Split, DEFAULT_HOLDOUT};
