@@ -3,6 +3,7 @@
 mod augment;
 mod bin;
 mod calibrate;
+mod metrics;
 mod split;
 
 pub use augment::Augmentation;
@@ -13,5 +14,8 @@ pub use bin::{
 pub use calibrate::{
     fit_temperature, review_threshold, Calibration, CalibrationError, HoldoutScores,
     DEFAULT_TARGET_PRECISION,
+};
+pub use metrics::{
+    ConfusionMatrix, Evaluation, LabelOutOfRange, Metrics, Misclassified, ScanOutcome, TypeScores,
 };
 pub use split::{holdout_split, HoldoutShareError, Split, DEFAULT_HOLDOUT};
