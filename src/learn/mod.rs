@@ -2,6 +2,7 @@
 
 mod augment;
 mod bin;
+mod cache;
 mod calibrate;
 mod metrics;
 mod split;
@@ -11,6 +12,7 @@ pub use bin::{
     scan_bin, BinError, BinWarning, LabelledScan, MoveRecord, PartsBin, SkipReason,
     IMBALANCE_RATIO, MIN_SCANS_PER_TYPE, SET_ASIDE_FOLDER,
 };
+pub use cache::{CacheKey, PreparedCache, CACHE_ENV, CACHE_FORMAT_VERSION};
 pub use calibrate::{
     fit_temperature, review_threshold, Calibration, CalibrationError, HoldoutScores,
     DEFAULT_TARGET_PRECISION,
