@@ -188,14 +188,15 @@ impl<'a> HoldoutScores<'a> {
 /// type, scores that do not change with T (every row constant), or no minimum inside the range
 /// (e.g. every holdout scan right by a wide margin, where the NLL keeps falling as T -> 0).
 pub fn fit_temperature(holdout: &HoldoutScores) -> f32 {
-    if holdout.labels.is_empty() || holdout.types < 2 {
+    let constant_rows = holdout
+        .rows()
+        .all(|(row, _)| row.iter().all(|&z| z == row[0]));
+    if holdout.labels.is_empty() || holdout.types < 2 || constant_rows {
         return 1.0;
     }
     let (lo, hi) = (MIN_TEMPERATURE.ln(), MAX_TEMPERATURE.ln());
     let ln_t = golden_section_minimum(|u| holdout.mean_nll(u), lo, hi, LN_T_TOLERANCE);
-    let flat = (holdout.mean_nll(lo) - holdout.mean_nll(hi)).abs() < 1e-12;
-    let at_edge = ln_t - lo < 1e-6 || hi - ln_t < 1e-6;
-    if flat || at_edge {
+    if ln_t - lo < 1e-6 || hi - ln_t < 1e-6 {
         1.0
     } else {
         ln_t.exp() as f32
