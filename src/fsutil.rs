@@ -3,6 +3,7 @@
 use std::fs;
 use std::io::{self, Write};
 use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicU64, Ordering};
 
 /// Writes a file atomically: the bytes go to a temporary file beside `path`, which is
 /// flushed to disk and then renamed over `path`. On any error the temporary file is removed
