@@ -176,7 +176,8 @@ const FILE_STEP_MM: f64 = 0.01;
 
 /// Writes a parts bin: `out_dir/<type>/<type>_<nnn>.ply|.xyz` for every part type, `per_type`
 /// scans each (nnn from 000). About 60 % binary little-endian PLY, 20 % ascii PLY and 20 % XYZ,
-/// and one in six written in metres instead of mm, all chosen by each scan's seed. Existing
+/// and one in six written in metres instead of mm, all chosen by each scan's seed; coordinates
+/// are those of [`generate_scan`] rounded to 0.01 mm (in the file's units). Existing
 /// files of the same names are replaced (atomically); other files are left alone.
 ///
 /// Deterministic for `seed`, whatever the number of threads: scans run in parallel, each from
