@@ -19,11 +19,14 @@ fn scratch_dir(name: &str) -> PathBuf {
     dir
 }
 
-/// Every file under `dir` (one level of sub-folders), by path relative to `dir`.
+/// Every file in the sub-folders of `dir`, by path relative to `dir`.
 fn all_files(dir: &Path) -> BTreeMap<PathBuf, Vec<u8>> {
     let mut files = BTreeMap::new();
     for sub in fs::read_dir(dir).unwrap() {
         let sub = sub.unwrap().path();
+        if !sub.is_dir() {
+            continue;
+        }
         for file in fs::read_dir(&sub).unwrap() {
             let file = file.unwrap().path();
             let relative = file.strip_prefix(dir).unwrap().to_path_buf();
@@ -283,4 +286,28 @@ fn written_ply_with_normals_and_colours_reads_back_with_ply_rs() {
         }
     }
     fs::remove_dir_all(dir).unwrap();
+}
+
+#[test]
+fn committed_sample_bundle_has_every_type_and_stays_small() {
+    let bundle = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-scans");
+    let files = all_files(&bundle);
+    let total: usize = files.values().map(Vec::len).sum();
+    assert!(total < 5_000_000, "the bundle grew to {total} bytes");
+    for part_type in PartType::ALL {
+        let scans: Vec<&PathBuf> = files
+            .keys()
+            .filter(|p| p.starts_with(part_type.name()))
+            .collect();
+        assert_eq!(scans.len(), 12, "{part_type}");
+        for relative in scans {
+            let path = bundle.join(relative);
+            let points = if path.extension().is_some_and(|e| e == "xyz") {
+                read_xyz(&path)
+            } else {
+                read_with_ply_rs(&path)
+            };
+            assert!(points.len() > 1000, "{}", path.display());
+        }
+    }
 }
