@@ -229,6 +229,8 @@ fn bad_requests_give_clear_errors() {
         }) => {}
         other => panic!("{other:?}"),
     }
+    let err = write_parts_bin(&dir, 200_000, 1, &settings).unwrap_err();
+    assert!(err.to_string().contains("per_type"), "{err}");
     let mut odd = settings.clone();
     odd.dropout = 2.0;
     let err = write_parts_bin(&dir, 1, 1, &odd).unwrap_err();

@@ -69,20 +69,13 @@ fn invalid(what: String) -> io::Error {
 
 fn check_writable(cloud: &PointCloud) -> io::Result<()> {
     let n = cloud.len();
-    if let Some(normals) = &cloud.normals {
-        if normals.len() != n {
-            return Err(invalid(format!(
-                "cloud has {n} points but {} normals",
-                normals.len()
-            )));
-        }
-    }
-    if let Some(colors) = &cloud.colors {
-        if colors.len() != n {
-            return Err(invalid(format!(
-                "cloud has {n} points but {} colours",
-                colors.len()
-            )));
+    let counts = [
+        ("normals", cloud.normals.as_ref().map(Vec::len)),
+        ("colours", cloud.colors.as_ref().map(Vec::len)),
+    ];
+    for (kind, count) in counts {
+        if let Some(count) = count.filter(|&c| c != n) {
+            return Err(invalid(format!("cloud has {n} points but {count} {kind}")));
         }
     }
     let vectors = std::iter::once(&cloud.positions).chain(cloud.normals.as_ref());

@@ -170,6 +170,9 @@ impl BinSummary {
     }
 }
 
+/// Most scans per part type one call writes (refused before any work).
+const MAX_PER_TYPE: usize = 100_000;
+
 /// Coordinates in files are rounded to this step (mm): far below the sensor noise, and it
 /// keeps text files short.
 const FILE_STEP_MM: f64 = 0.01;
@@ -183,7 +186,7 @@ const FILE_STEP_MM: f64 = 0.01;
 /// Deterministic for `seed`, whatever the number of threads: scans run in parallel, each from
 /// its own seed derived from `seed`, the type and the index.
 ///
-/// Errors: `per_type` of 0 or bad settings ([`SynthError::InvalidSetting`]); a folder or file
+/// Errors: `per_type` outside 1 to 100,000 or bad settings ([`SynthError::InvalidSetting`]); a folder or file
 /// that cannot be written ([`SynthError::Write`], naming it).
 pub fn write_parts_bin(
     out_dir: &Path,
@@ -191,11 +194,11 @@ pub fn write_parts_bin(
     seed: u64,
     settings: &SensorSettings,
 ) -> Result<BinSummary, SynthError> {
-    if per_type == 0 {
+    if !(1..=MAX_PER_TYPE).contains(&per_type) {
         return Err(SynthError::InvalidSetting {
             name: "per_type",
-            value: "0".into(),
-            expected: "at least 1 scan per part type",
+            value: per_type.to_string(),
+            expected: "1 to 100000 scans per part type",
         });
     }
     settings.check()?;

@@ -162,6 +162,17 @@ fn lathe(sections: &[Section]) -> Mesh {
     })
 }
 
+/// A part turned from one profile the same all round, with [`ROUND_STEPS`] columns.
+fn round_lathe(profile: &[[f64; 2]]) -> Mesh {
+    let sections: Vec<Section> = turn_angles(ROUND_STEPS)
+        .map(|angle| Section {
+            angle,
+            profile: profile.to_vec(),
+        })
+        .collect();
+    lathe(&sections)
+}
+
 /// `n` equal steps of a full turn starting at 0.
 fn turn_angles(n: usize) -> impl Iterator<Item = f64> {
     (0..n).map(move |i| TAU * i as f64 / n as f64)
@@ -323,13 +334,7 @@ impl WasherDims {
             self.chamfer,
         );
         let profile = vec![[ri, 0.0], [ro, 0.0], [ro, t - c], [ro - c, t], [ri, t]];
-        let sections: Vec<Section> = turn_angles(ROUND_STEPS)
-            .map(|angle| Section {
-                angle,
-                profile: profile.clone(),
-            })
-            .collect();
-        lathe(&sections)
+        round_lathe(&profile)
     }
 
     fn part(&self) -> Part {
@@ -948,13 +953,7 @@ impl BushingDims {
             [r1 + c, b1],
             [r1, b1 - c],
         ];
-        let sections: Vec<Section> = turn_angles(ROUND_STEPS)
-            .map(|angle| Section {
-                angle,
-                profile: profile.clone(),
-            })
-            .collect();
-        lathe(&sections)
+        round_lathe(&profile)
     }
 
     fn part(&self, rng: &mut Rng) -> Part {

@@ -70,7 +70,7 @@ impl Default for SensorSettings {
 }
 
 /// Largest image side accepted, pixels (refused before allocating buffers).
-const MAX_SIDE_PX: u32 = 8192;
+const MAX_SIDE_PX: u32 = 4096;
 
 impl SensorSettings {
     /// The settings of the committed `sample-scans/` bundle: 160 x 120 pixels, the part framed
@@ -100,7 +100,7 @@ impl SensorSettings {
         };
         for (name, side) in [("width_px", self.width_px), ("height_px", self.height_px)] {
             if !(16..=MAX_SIDE_PX).contains(&side) {
-                return bad(name, side.to_string(), "16 to 8192 pixels");
+                return bad(name, side.to_string(), "16 to 4096 pixels");
             }
         }
         let checks: [(&'static str, [f64; 2], f64, f64, &'static str); 4] = [
@@ -589,6 +589,27 @@ impl DepthImage {
     }
 }
 
+/// One sweep of the chamfer 3-4 distance transform over a `w` x `h` grid: top-left to
+/// bottom-right taking the neighbours already visited (left and the row above), or back.
+fn chamfer_pass(d: &mut [u32], w: usize, h: usize, backward: bool) {
+    const VISITED_BEFORE: [(isize, isize, u32); 4] =
+        [(-1, 0, 3), (-1, -1, 4), (0, -1, 3), (1, -1, 4)];
+    let sign = if backward { -1 } else { 1 };
+    for step in 0..w * h {
+        let i = if backward { w * h - 1 - step } else { step };
+        let (x, y) = ((i % w) as isize, (i / w) as isize);
+        for (dx, dy, cost) in VISITED_BEFORE {
+            let (nx, ny) = (x + sign * dx, y + sign * dy);
+            if nx >= 0 && ny >= 0 && (nx as usize) < w && (ny as usize) < h {
+                let through = d[ny as usize * w + nx as usize] + cost;
+                if through < d[i] {
+                    d[i] = through;
+                }
+            }
+        }
+    }
+}
+
 /// Twice the area over the perimeter of the marked region, pixels: the radius of a disc, the
 /// width of a long strip. Perimeter pixels are marked pixels with an unmarked 4-neighbour.
 fn silhouette_width(marked: &[bool], w: usize, h: usize) -> f64 {
@@ -636,46 +657,8 @@ fn within_distance(marked: &[bool], w: usize, h: usize, radius: f64) -> Vec<bool
             }
         })
         .collect();
-    let relax = |d: &mut [u32], here: usize, there: usize, cost: u32| {
-        let through = d[there] + cost;
-        if through < d[here] {
-            d[here] = through;
-        }
-    };
-    for y in 0..wh {
-        for x in 0..ww {
-            let i = y * ww + x;
-            if x > 0 {
-                relax(&mut d, i, i - 1, 3);
-            }
-            if y > 0 {
-                relax(&mut d, i, i - ww, 3);
-                if x > 0 {
-                    relax(&mut d, i, i - ww - 1, 4);
-                }
-                if x + 1 < ww {
-                    relax(&mut d, i, i - ww + 1, 4);
-                }
-            }
-        }
-    }
-    for y in (0..wh).rev() {
-        for x in (0..ww).rev() {
-            let i = y * ww + x;
-            if x + 1 < ww {
-                relax(&mut d, i, i + 1, 3);
-            }
-            if y + 1 < wh {
-                relax(&mut d, i, i + ww, 3);
-                if x + 1 < ww {
-                    relax(&mut d, i, i + ww + 1, 4);
-                }
-                if x > 0 {
-                    relax(&mut d, i, i + ww - 1, 4);
-                }
-            }
-        }
-    }
+    chamfer_pass(&mut d, ww, wh, false);
+    chamfer_pass(&mut d, ww, wh, true);
     let limit = 3.0 * radius;
     for (i, &dist) in d.iter().enumerate() {
         near[(y0 + i / ww) * w + x0 + i % ww] = f64::from(dist) <= limit;
