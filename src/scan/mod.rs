@@ -7,6 +7,8 @@
 use std::fmt;
 use std::path::{Path, PathBuf};
 
+pub mod write;
+
 /// Points of one scan, with optional per-point normals and colours (same length as `positions`).
 #[derive(Clone, Debug, Default, PartialEq)]
 pub struct PointCloud {
