@@ -318,8 +318,9 @@ fn parse_property(args: &[&[u8]]) -> Result<Property, String> {
 
 /// What to take from which element.
 struct Plan {
-    vertex: usize,
-    layout: PointLayout,
+    /// The vertex element and how its records make points; `Err` says why there are none.
+    /// The body is walked either way, so that its own errors come first.
+    vertex: Result<(usize, PointLayout), ScanError>,
     /// Where the faces' vertex indices are, when triangles are wanted.
     faces: Option<FaceList>,
 }
@@ -332,7 +333,17 @@ struct FaceList {
     item: ValueType,
 }
 
-fn plan(path: &Path, header: &Header, want_triangles: bool) -> Result<Plan, ScanError> {
+impl Plan {
+    fn vertex_element(&self) -> Option<usize> {
+        self.vertex.as_ref().ok().map(|v| v.0)
+    }
+
+    fn layout(&self) -> Option<&PointLayout> {
+        self.vertex.as_ref().ok().map(|v| &v.1)
+    }
+}
+
+fn vertex_layout(path: &Path, header: &Header) -> Result<(usize, PointLayout), ScanError> {
     let names: Vec<&str> = header.elements.iter().map(|e| e.name.as_str()).collect();
     let vertex = header
         .elements
@@ -386,42 +397,42 @@ fn plan(path: &Path, header: &Header, want_triangles: bool) -> Result<Plan, Scan
         normal: triple(["nx", "ny", "nz"])?,
         colour: triple(["red", "green", "blue"])?.map(ColourSource::Channels),
     };
+    Ok((vertex, layout))
+}
+
+fn plan(path: &Path, header: &Header, want_triangles: bool) -> Result<Plan, ScanError> {
+    let vertex = vertex_layout(path, header);
     let mut faces = None;
-    if want_triangles {
-        if let Some(f) = header.elements.iter().position(|e| e.name == "face") {
-            let face = &header.elements[f];
-            let list = face
-                .find("vertex_indices")
-                .or_else(|| face.find("vertex_index"));
-            if let Some(p) = list {
-                match face.properties[p].kind {
-                    Kind::List { count, item } if item.is_integer() => {
-                        faces = Some(FaceList {
-                            element: f,
-                            property: p,
-                            len_type: count,
-                            item,
-                        })
-                    }
-                    _ => {
-                        return Err(ScanError::at_line(
-                            path,
-                            face.line,
-                            format!(
-                                "face property '{}' is not a list of integers",
-                                face.properties[p].name
-                            ),
-                        ))
-                    }
+    let face = header.elements.iter().position(|e| e.name == "face");
+    if let (true, Ok(_), Some(f)) = (want_triangles, &vertex, face) {
+        let face = &header.elements[f];
+        let list = face
+            .find("vertex_indices")
+            .or_else(|| face.find("vertex_index"));
+        if let Some(p) = list {
+            match face.properties[p].kind {
+                Kind::List { count, item } if item.is_integer() => {
+                    faces = Some(FaceList {
+                        element: f,
+                        property: p,
+                        len_type: count,
+                        item,
+                    })
+                }
+                _ => {
+                    return Err(ScanError::at_line(
+                        path,
+                        face.line,
+                        format!(
+                            "face property '{}' is not a list of integers",
+                            face.properties[p].name
+                        ),
+                    ))
                 }
             }
         }
     }
-    Ok(Plan {
-        vertex,
-        layout,
-        faces,
-    })
+    Ok(Plan { vertex, faces })
 }
 
 /// Reads a PLY file; with `want_triangles`, also its faces as triangles.
@@ -437,7 +448,8 @@ pub(crate) fn decode(
         Encoding::BinaryLe => read_binary(path, bytes, &header, &plan, false)?,
         Encoding::BinaryBe => read_binary(path, bytes, &header, &plan, true)?,
     };
-    let vertex = &header.elements[plan.vertex];
+    let (vertex, _) = plan.vertex?;
+    let vertex = &header.elements[vertex];
     Ok(Decoded {
         format: match header.encoding {
             Encoding::Ascii => ScanFormat::PlyAscii,
@@ -500,9 +512,10 @@ fn read_binary(
     big_endian: bool,
 ) -> Result<(PointCloud, Vec<[u32; 3]>), ScanError> {
     let fail = |(at, what): (usize, String)| ScanError::at_byte(path, at, what);
-    let vertices = header.elements[plan.vertex].count;
+    let vertex = plan.vertex_element();
+    let vertices = vertex.map_or(0, |v| header.elements[v].count);
     let mut pos = header.body_start;
-    let mut points = plan.layout.new_cloud(0);
+    let mut points = PointCloud::default();
     let mut triangles = Vec::new();
     for (e, element) in header.elements.iter().enumerate() {
         let count = count_that_fits(
@@ -513,15 +526,14 @@ fn read_binary(
         )
         .map_err(|m| fail((pos, m)))?;
         let mut offsets = vec![0usize; element.properties.len()];
-        if e == plan.vertex {
-            points = plan.layout.new_cloud(count);
+        if let Some(layout) = plan.layout().filter(|_| vertex == Some(e)) {
+            points = layout.new_cloud(count);
             match element.fixed_size() {
                 Some(stride) => {
                     let offsets = element.fixed_offsets();
                     let end = pos + count * stride;
                     for record in bytes[pos..end].chunks_exact(stride) {
-                        plan.layout
-                            .push_binary(&mut points, record, &offsets, big_endian);
+                        layout.push_binary(&mut points, record, &offsets, big_endian);
                     }
                     pos = end;
                 }
@@ -530,8 +542,7 @@ fn read_binary(
                         let len = walk_record(bytes, pos, element, big_endian, &mut offsets)
                             .map_err(fail)?;
                         let record = &bytes[pos..pos + len];
-                        plan.layout
-                            .push_binary(&mut points, record, &offsets, big_endian);
+                        layout.push_binary(&mut points, record, &offsets, big_endian);
                         pos += len;
                     }
                 }
@@ -632,9 +643,10 @@ fn read_ascii(
     header: &Header,
     plan: &Plan,
 ) -> Result<(PointCloud, Vec<[u32; 3]>), ScanError> {
-    let vertices = header.elements[plan.vertex].count;
+    let vertex = plan.vertex_element();
+    let vertices = vertex.map_or(0, |v| header.elements[v].count);
     let mut lines = TextLines::new(bytes, header.body_start, header.body_line);
-    let mut points = plan.layout.new_cloud(0);
+    let mut points = PointCloud::default();
     let mut triangles = Vec::new();
     let mut values = Vec::new();
     let mut list_items = Vec::new();
@@ -650,10 +662,10 @@ fn read_ascii(
             bytes.len() - lines.position() + 1,
         )
         .map_err(|m| ScanError::at_line(path, lines.line() + 1, m))?;
-        let is_vertex = e == plan.vertex;
+        let layout = plan.layout().filter(|_| vertex == Some(e));
         let face_list = plan.faces.filter(|f| f.element == e).map(|f| f.property);
-        if is_vertex {
-            points = plan.layout.new_cloud(count);
+        if let Some(layout) = layout {
+            points = layout.new_cloud(count);
         }
         values.resize(element.properties.len(), 0.0);
         for record in 0..count {
@@ -668,13 +680,13 @@ fn read_ascii(
                     ),
                 ));
             };
-            if !is_vertex && face_list.is_none() {
+            if layout.is_none() && face_list.is_none() {
                 continue;
             }
             parse_ascii_record(element, line, &mut values, face_list, &mut list_items)
                 .map_err(|m| ScanError::at_line(path, line_no, m))?;
-            if is_vertex {
-                plan.layout.push_values(&mut points, &values);
+            if let Some(layout) = layout {
+                layout.push_values(&mut points, &values);
             } else {
                 let mut fan = Fan::new();
                 for &index in &list_items {
