@@ -154,6 +154,7 @@ impl Recipe {
                 adapt_to_noise: s.table_distance_mm.is_none(),
                 min_fraction: s.table_min_fraction,
                 iterations: s.ransac_iterations,
+                spacing_mm: scan_spacing_mm,
                 seed: RANSAC_SEED,
             };
             match plane::find_table(&points, &search) {

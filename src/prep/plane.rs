@@ -6,6 +6,7 @@ use serde::{Deserialize, Serialize};
 use super::geom::{
     centroid_of, cross, dot, norm, rotate, rotation_to_z, scatter_of, sub, symmetric_eigen,
 };
+use crate::graph::spatial::SpatialIndex;
 use crate::rng::Rng;
 
 /// A plane `normal · p + offset_mm = 0`, with a unit `normal`.
@@ -159,13 +160,15 @@ pub(crate) struct TableFound {
 
 /// How to look for the table.
 pub(crate) struct TableSearchSettings {
-    /// RANSAC inlier distance (mm): set by the user, or two spacings by default.
+    /// RANSAC inlier distance (mm): set by the user, or one spacing by default.
     pub ransac_threshold_mm: f32,
-    /// Widen the threshold to 3 standard deviations of the range noise on the table
-    /// (off when the user set the distance).
+    /// Set the final threshold to 3 standard deviations of the range noise on the table,
+    /// at least half the RANSAC distance (off when the user set the distance).
     pub adapt_to_noise: bool,
     pub min_fraction: f32,
     pub iterations: u32,
+    /// The scan's point spacing (mm), to tell what stands on the plane from noise.
+    pub spacing_mm: f32,
     pub seed: u64,
 }
 
@@ -210,7 +213,7 @@ pub(crate) fn find_table(points: &[[f32; 3]], settings: &TableSearchSettings) ->
             settings.ransac_threshold_mm
         };
         let plane = part_side_up(points, plane, threshold_mm);
-        let sides = support_sides(points, &plane, threshold_mm);
+        let sides = support_sides(points, &plane, threshold_mm, settings.spacing_mm);
         if sides >= SIDES_NEEDED {
             return TableSearch::Found(TableFound {
                 plane,
@@ -227,11 +230,12 @@ pub(crate) fn find_table(points: &[[f32; 3]], settings: &TableSearchSettings) ->
     TableSearch::NotFound(first_failure.unwrap_or_else(|| "no plane through the points".into()))
 }
 
-/// The table distance widened to cover the range noise: 3 robust standard deviations
-/// (1.4826 x the median absolute residual, the normal-consistent MAD: common practice, no
-/// source) of the points near the plane, iterated twice so a noise larger than the first
-/// guess widens the window it is measured in.
+/// The table distance fitted to the range noise: 3 robust standard deviations (1.4826 x the
+/// median absolute residual, the normal-consistent MAD: common practice, no source) of the
+/// points near the plane, at least half of `base_mm`; iterated twice so a noise larger than
+/// the first guess widens the window it is measured in.
 fn noise_threshold(points: &[[f32; 3]], plane: &Plane, base_mm: f32) -> f32 {
+    let floor = 0.5 * base_mm;
     let mut threshold = base_mm;
     let mut residuals: Vec<f32> = Vec::with_capacity(points.len());
     for _round in 0..2 {
@@ -248,7 +252,7 @@ fn noise_threshold(points: &[[f32; 3]], plane: &Plane, base_mm: f32) -> f32 {
         }
         let mid = residuals.len() / 2;
         let (_, median, _) = residuals.select_nth_unstable_by(mid, f32::total_cmp);
-        threshold = base_mm.max(3.0 * 1.4826 * *median);
+        threshold = floor.max(3.0 * 1.4826 * *median);
     }
     threshold
 }
@@ -272,38 +276,45 @@ fn part_side_up(points: &[[f32; 3]], plane: Plane, threshold_mm: f32) -> Plane {
     }
 }
 
-/// On how many of 8 sides (45° sectors around the footprint centre of the points above the
+/// Points above the plane count for the footprint only with at least this many others
+/// above it within [`SOLID_RADIUS_SPACINGS`] spacings: range noise just past the threshold
+/// is scattered thinly over the whole table and must not count as something standing on it.
+const SOLID_NEIGHBOURS: usize = 4;
+const SOLID_RADIUS_SPACINGS: f32 = 3.0;
+
+/// On how many of 8 sides (45° sectors around the footprint centre of what stands on the
 /// plane) the plane's points reach beyond that footprint. A table around a part is seen on
-/// all sides; a face of a part is not (the rest of the part stands on or over it). The
-/// footprint is the 90th percentile of the above points' distance from their centre in the
-/// plane, so a few strays do not inflate it.
-fn support_sides(points: &[[f32; 3]], plane: &Plane, threshold_mm: f32) -> usize {
-    let up = plane.normal;
-    let r = rotation_to_z(up);
-    let (mut cx, mut cy, mut above) = (0f64, 0f64, 0usize);
-    for &p in points {
-        if plane.signed_distance(p) > threshold_mm {
-            let q = rotate(&r, p);
-            cx += q[0] as f64;
-            cy += q[1] as f64;
-            above += 1;
-        }
-    }
-    if above == 0 {
-        return 0;
-    }
-    let (cx, cy) = ((cx / above as f64) as f32, (cy / above as f64) as f32);
-    let mut radii: Vec<f32> = points
+/// all sides; a face of a part is not (the rest of the part stands on or over it). What
+/// stands on the plane: the points above the threshold with neighbours above it too (see
+/// [`SOLID_NEIGHBOURS`]). The footprint is the 90th percentile of their distance from their
+/// centre in the plane, so a few strays do not inflate it.
+fn support_sides(points: &[[f32; 3]], plane: &Plane, threshold_mm: f32, spacing_mm: f32) -> usize {
+    let r = rotation_to_z(plane.normal);
+    let above: Vec<[f32; 3]> = points
         .iter()
         .filter(|&&p| plane.signed_distance(p) > threshold_mm)
-        .map(|&p| {
-            let q = rotate(&r, p);
-            (q[0] - cx).hypot(q[1] - cy)
-        })
+        .map(|&p| rotate(&r, p))
         .collect();
+    let index = SpatialIndex::new(&above);
+    let radius = SOLID_RADIUS_SPACINGS * spacing_mm;
+    let solid: Vec<[f32; 2]> = above
+        .iter()
+        .filter(|&&q| {
+            let mut near = 0usize;
+            index.for_each_within(q, radius, |_, _| near += 1);
+            near > SOLID_NEIGHBOURS // the point itself is among them
+        })
+        .map(|q| [q[0], q[1]])
+        .collect();
+    if solid.is_empty() {
+        return 0;
+    }
+    let n = solid.len() as f64;
+    let cx = (solid.iter().map(|q| q[0] as f64).sum::<f64>() / n) as f32;
+    let cy = (solid.iter().map(|q| q[1] as f64).sum::<f64>() / n) as f32;
+    let mut radii: Vec<f32> = solid.iter().map(|q| (q[0] - cx).hypot(q[1] - cy)).collect();
     let at = (radii.len() * 9 / 10).min(radii.len() - 1);
-    let (_, footprint, _) = radii.select_nth_unstable_by(at, f32::total_cmp);
-    let footprint = *footprint;
+    let footprint = *radii.select_nth_unstable_by(at, f32::total_cmp).1;
     let mut per_side = [0usize; 8];
     let mut on_plane = 0usize;
     for &p in points {
@@ -388,8 +399,9 @@ mod tests {
         assert!(ransac_plane(&vec![[2.0; 3]; 20], 0.1, 100, 0).is_none());
     }
 
-    fn settings(threshold: f32) -> TableSearchSettings {
+    fn settings(threshold: f32, spacing_mm: f32) -> TableSearchSettings {
         TableSearchSettings {
+            spacing_mm,
             ransac_threshold_mm: threshold,
             adapt_to_noise: true,
             min_fraction: 0.1,
@@ -404,12 +416,13 @@ mod tests {
         let mut pts = noisy_plane(8000, 3000, 0.5, &mut rng);
         // A few points below the table (reflections) must not turn the plane over.
         pts.extend((0..50).map(|i| [i as f32, 0.0, -40.0]));
-        let TableSearch::Found(t) = find_table(&pts, &settings(0.4)) else {
+        let TableSearch::Found(t) = find_table(&pts, &settings(0.4, 2.0)) else {
             panic!("no table")
         };
         assert_close_plane(&t.plane, &known_plane(), 0.3, 0.1);
         assert!(t.plane.normal[2] > 0.0, "part is above: {:?}", t.plane);
-        // Noise sigma 0.5 mm: the threshold widens from 0.4 to about 1.5 mm.
+        // Noise sigma 0.5 mm (along z; 0.48 along the normal): the threshold widens from
+        // 0.4 to about 1.45 mm.
         assert!((1.2..1.8).contains(&t.threshold_mm), "{}", t.threshold_mm);
     }
 
@@ -428,7 +441,7 @@ mod tests {
                 _ => [60.0 * u, 40.0 * v, 20.0],
             });
         }
-        match find_table(&pts, &settings(0.3)) {
+        match find_table(&pts, &settings(0.3, 1.0)) {
             TableSearch::NotFound(why) => assert!(why.contains("face of the part"), "{why}"),
             TableSearch::Found(t) => panic!("took a face for the table: {t:?}"),
         }
@@ -439,7 +452,7 @@ mod tests {
         let mut rng = Rng::new(6);
         let mut pts = noisy_plane(200, 0, 0.1, &mut rng);
         pts.extend((0..5000).map(|_| [0, 0, 0].map(|_| rng.range(-100.0, 100.0) as f32)));
-        match find_table(&pts, &settings(0.3)) {
+        match find_table(&pts, &settings(0.3, 2.0)) {
             TableSearch::NotFound(why) => assert!(why.contains("holds"), "{why}"),
             TableSearch::Found(t) => panic!("{t:?}"),
         }

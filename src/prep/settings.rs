@@ -17,9 +17,10 @@ pub struct RecipeSettings {
     pub crop_box_mm: Option<[[f32; 3]; 2]>,
     /// Look for the table plane, remove it and turn the cloud so the table normal is +Z.
     pub table_plane: bool,
-    /// Distance from the table plane (mm) within which a point is table. `None`: derived
-    /// from the spacing (see `table_distance_spacings`) and widened to 3 standard deviations
-    /// of the measured range noise on the table.
+    /// Distance from the table plane (mm) within which a point is table. `None`: RANSAC
+    /// looks for the plane within `table_distance_spacings` spacings, then the distance is
+    /// set to 3 standard deviations of the measured range noise on the table (at least
+    /// half the search distance), so a thin part (a washer) is not taken with the table.
     pub table_distance_mm: Option<f32>,
     /// The table distance in point spacings when `table_distance_mm` is `None` (0.5 to 20).
     pub table_distance_spacings: f32,
@@ -52,7 +53,7 @@ impl Default for RecipeSettings {
             crop_box_mm: None,
             table_plane: true,
             table_distance_mm: None,
-            table_distance_spacings: 2.0,
+            table_distance_spacings: 1.0,
             table_min_fraction: 0.1,
             ransac_iterations: 1000,
             stray_neighbours: 16,
