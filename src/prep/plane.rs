@@ -282,12 +282,13 @@ fn part_side_up(points: &[[f32; 3]], plane: Plane, threshold_mm: f32) -> Plane {
 const SOLID_NEIGHBOURS: usize = 4;
 const SOLID_RADIUS_SPACINGS: f32 = 3.0;
 
-/// On how many of 8 sides (45° sectors around the footprint centre of what stands on the
-/// plane) the plane's points reach beyond that footprint. A table around a part is seen on
-/// all sides; a face of a part is not (the rest of the part stands on or over it). What
-/// stands on the plane: the points above the threshold with neighbours above it too (see
-/// [`SOLID_NEIGHBOURS`]). The footprint is the 90th percentile of their distance from their
-/// centre in the plane, so a few strays do not inflate it.
+/// On how many of 8 sides (45° sectors around the centre of what stands on the plane) the
+/// plane's points reach beyond what stands on it. A table around a part is seen on all
+/// sides, however narrow the band of table around it; a face of a part is not (the rest of
+/// the part stands on its rim or over it). What stands on the plane: the points above the
+/// threshold with neighbours above it too (see [`SOLID_NEIGHBOURS`]); its reach on each side
+/// is the farthest of them in that sector, so a long thin part (a bolt lying down) is
+/// judged side by side, not by one radius.
 fn support_sides(points: &[[f32; 3]], plane: &Plane, threshold_mm: f32, spacing_mm: f32) -> usize {
     let r = rotation_to_z(plane.normal);
     let above: Vec<[f32; 3]> = points
@@ -310,11 +311,20 @@ fn support_sides(points: &[[f32; 3]], plane: &Plane, threshold_mm: f32, spacing_
         return 0;
     }
     let n = solid.len() as f64;
-    let cx = (solid.iter().map(|q| q[0] as f64).sum::<f64>() / n) as f32;
-    let cy = (solid.iter().map(|q| q[1] as f64).sum::<f64>() / n) as f32;
-    let mut radii: Vec<f32> = solid.iter().map(|q| (q[0] - cx).hypot(q[1] - cy)).collect();
-    let at = (radii.len() * 9 / 10).min(radii.len() - 1);
-    let footprint = *radii.select_nth_unstable_by(at, f32::total_cmp).1;
+    let centre = [
+        (solid.iter().map(|q| q[0] as f64).sum::<f64>() / n) as f32,
+        (solid.iter().map(|q| q[1] as f64).sum::<f64>() / n) as f32,
+    ];
+    let polar = |x: f32, y: f32| {
+        let (dx, dy) = (x - centre[0], y - centre[1]);
+        let turn = dy.atan2(dx) / std::f32::consts::TAU + 0.5; // 0..=1
+        (((turn * 8.0) as usize).min(7), dx.hypot(dy))
+    };
+    let mut reach = [0f32; 8];
+    for q in &solid {
+        let (side, dist) = polar(q[0], q[1]);
+        reach[side] = reach[side].max(dist);
+    }
     let mut per_side = [0usize; 8];
     let mut on_plane = 0usize;
     for &p in points {
@@ -323,10 +333,9 @@ fn support_sides(points: &[[f32; 3]], plane: &Plane, threshold_mm: f32, spacing_
         }
         on_plane += 1;
         let q = rotate(&r, p);
-        let (dx, dy) = (q[0] - cx, q[1] - cy);
-        if dx.hypot(dy) > footprint {
-            let turn = dy.atan2(dx) / std::f32::consts::TAU + 0.5; // 0..=1
-            per_side[((turn * 8.0) as usize).min(7)] += 1;
+        let (side, dist) = polar(q[0], q[1]);
+        if dist > reach[side] {
+            per_side[side] += 1;
         }
     }
     let need = (SIDE_SHARE * on_plane as f64).max(1.0);
