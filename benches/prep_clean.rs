@@ -1,0 +1,91 @@
+//! Clean-up of a raw 100k-point tabletop scan (simulated depth camera, tests/prep_scene),
+//! on one core and on all cores: the median of several runs of `Recipe::run`, and of its
+//! heaviest pieces alone. `cargo bench --no-default-features --bench prep_clean`.
+
+#[path = "../tests/prep_scene/mod.rs"]
+mod prep_scene;
+
+use std::hint::black_box;
+use std::time::Instant;
+
+use partsift::graph::spatial::{knn_graph, SpatialIndex};
+use partsift::prep::{farthest_point_sample, ransac_plane, voxel_centroids, Recipe};
+use partsift::scan::PointCloud;
+use prep_scene::Scene;
+
+const RUNS: usize = 11;
+
+fn median_ms(mut run: impl FnMut()) -> f64 {
+    run(); // warm up
+    let mut times: Vec<f64> = (0..RUNS)
+        .map(|_| {
+            let t = Instant::now();
+            run();
+            t.elapsed().as_secs_f64() * 1e3
+        })
+        .collect();
+    times.sort_by(f64::total_cmp);
+    times[RUNS / 2]
+}
+
+fn measure(threads: usize, cloud: &PointCloud) {
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(threads)
+        .build()
+        .expect("thread pool");
+    pool.install(|| {
+        let recipe = Recipe::default();
+        let p = &cloud.positions;
+        let total = median_ms(|| {
+            black_box(recipe.run(cloud).expect("clean-up"));
+        });
+        println!(
+            "{threads} thread(s): Recipe::run on {} points: median {total:.1} ms",
+            p.len()
+        );
+        let build = median_ms(|| {
+            black_box(SpatialIndex::new(p));
+        });
+        let index = SpatialIndex::new(p);
+        let knn = median_ms(|| {
+            for &q in p.iter().step_by(10) {
+                black_box(index.knn(q, 17));
+            }
+        });
+        let ransac = median_ms(|| {
+            black_box(ransac_plane(p, 1.0, 1000, 1));
+        });
+        let voxels = median_ms(|| {
+            black_box(voxel_centroids(p, 1.5));
+        });
+        let part = voxel_centroids(&p[..20_000], 1.0);
+        let fps = median_ms(|| {
+            black_box(farthest_point_sample(&part, 1024, 0));
+        });
+        let graph = median_ms(|| {
+            black_box(knn_graph(&part[..part.len().min(2048)], 20));
+        });
+        println!("    k-d tree build, {} points: {build:.1} ms", p.len());
+        println!("    17-nearest of {} points: {knn:.1} ms", p.len() / 10);
+        println!("    RANSAC plane, 1000 candidates + refit: {ransac:.1} ms");
+        println!("    voxel centroids of {} points: {voxels:.1} ms", p.len());
+        println!(
+            "    farthest point sampling {} -> 1024: {fps:.1} ms",
+            part.len()
+        );
+        println!(
+            "    knn_graph of {} points, k = 20: {graph:.1} ms",
+            part.len().min(2048)
+        );
+    });
+}
+
+fn main() {
+    let scan = Scene::default().scan();
+    let cloud = PointCloud::from_positions(scan.points);
+    let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
+    measure(1, &cloud);
+    if cores > 1 {
+        measure(cores, &cloud);
+    }
+}

@@ -1,0 +1,469 @@
+//! Step 2: the table plane. A RANSAC plane fit (Fischler and Bolles, 1981), refined by least
+//! squares, then a test that the plane is the part's support and not one of its faces.
+
+use serde::{Deserialize, Serialize};
+
+use super::geom::{
+    centroid_of, cross, dot, norm, rotate, rotation_to_z, scatter_of, sub, symmetric_eigen,
+};
+use crate::graph::spatial::SpatialIndex;
+use crate::rng::Rng;
+
+/// A plane `normal · p + offset_mm = 0`, with a unit `normal`.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Plane {
+    pub normal: [f32; 3],
+    pub offset_mm: f32,
+}
+
+impl Plane {
+    /// Signed distance (mm) of `p`, positive on the side the normal points to.
+    pub fn signed_distance(&self, p: [f32; 3]) -> f32 {
+        dot(self.normal, p) + self.offset_mm
+    }
+
+    fn flipped(self) -> Plane {
+        Plane {
+            normal: self.normal.map(|c| -c),
+            offset_mm: -self.offset_mm,
+        }
+    }
+}
+
+/// Points on which candidate planes are scored: enough to tell a 5 % plane from noise, few
+/// enough that a thousand candidates cost a few milliseconds.
+const SCORE_SAMPLE: usize = 4096;
+/// RANSAC stops once the best plane so far would have been drawn with this probability.
+const CONFIDENCE: f64 = 0.999;
+
+/// The plane with the most points within `threshold_mm`, by RANSAC over at most
+/// `iterations` candidates (each through three random points, scored on a random sample),
+/// then refined by a least-squares fit to its inliers among all points (twice). Returns the
+/// plane and its inlier count among all `points`, or `None` with fewer than 3 points or no
+/// non-degenerate candidate. Deterministic for a given `seed`.
+pub fn ransac_plane(
+    points: &[[f32; 3]],
+    threshold_mm: f32,
+    iterations: u32,
+    seed: u64,
+) -> Option<(Plane, usize)> {
+    if points.len() < 3 {
+        return None;
+    }
+    let mut rng = Rng::new(seed);
+    let sample: Vec<[f32; 3]> = if points.len() <= SCORE_SAMPLE {
+        points.to_vec()
+    } else {
+        (0..SCORE_SAMPLE)
+            .map(|_| points[rng.below(points.len())])
+            .collect()
+    };
+    let scale = extent(&sample);
+    let mut best: Option<(Plane, usize)> = None;
+    let mut needed = iterations as f64;
+    let mut done = 0u32;
+    while (done as f64) < needed.min(iterations as f64) {
+        done += 1;
+        let [a, b, c] = [0; 3].map(|_| sample[rng.below(sample.len())]);
+        let n = cross(sub(b, a), sub(c, a));
+        let len = norm(n);
+        // Collinear or repeated picks give no plane.
+        if len.is_nan() || len <= 1e-6 * scale * scale {
+            continue;
+        }
+        let normal = n.map(|v| v / len);
+        let plane = Plane {
+            normal,
+            offset_mm: -dot(normal, a),
+        };
+        let count = sample
+            .iter()
+            .filter(|&&p| plane.signed_distance(p).abs() <= threshold_mm)
+            .count();
+        if best.is_none_or(|(_, c)| count > c) {
+            best = Some((plane, count));
+            let w = count as f64 / sample.len() as f64;
+            let miss = 1.0 - w * w * w;
+            if miss <= 0.0 {
+                break;
+            }
+            needed = ((1.0 - CONFIDENCE).ln() / miss.ln()).ceil();
+        }
+    }
+    let (mut plane, _) = best?;
+    for _round in 0..2 {
+        let inliers = || {
+            (0..points.len()).filter(|&i| plane.signed_distance(points[i]).abs() <= threshold_mm)
+        };
+        let Some(refined) = least_squares_plane(points, inliers()) else {
+            break;
+        };
+        // Keep the orientation of the RANSAC normal, so refinement never flips it.
+        plane = if dot(refined.normal, plane.normal) < 0.0 {
+            refined.flipped()
+        } else {
+            refined
+        };
+    }
+    let inliers = points
+        .iter()
+        .filter(|&&p| plane.signed_distance(p).abs() <= threshold_mm)
+        .count();
+    Some((plane, inliers))
+}
+
+fn extent(points: &[[f32; 3]]) -> f32 {
+    let mut lo = [f32::INFINITY; 3];
+    let mut hi = [f32::NEG_INFINITY; 3];
+    for p in points {
+        for a in 0..3 {
+            lo[a] = lo[a].min(p[a]);
+            hi[a] = hi[a].max(p[a]);
+        }
+    }
+    norm(sub(hi, lo))
+}
+
+/// The plane through the centroid along the two largest principal axes of the points at
+/// `indices`; `None` for fewer than 3 points.
+fn least_squares_plane(
+    points: &[[f32; 3]],
+    indices: impl Iterator<Item = usize> + Clone,
+) -> Option<Plane> {
+    indices.clone().nth(2)?;
+    let c = centroid_of(points, indices.clone())?;
+    let (_, vectors) = symmetric_eigen(scatter_of(points, indices, c));
+    let n = vectors[0];
+    let normal = n.map(|v| v as f32);
+    let offset = -(n[0] * c[0] + n[1] * c[1] + n[2] * c[2]);
+    Some(Plane {
+        normal,
+        offset_mm: offset as f32,
+    })
+}
+
+/// What [`find_table`] decided.
+#[derive(Clone, Debug, PartialEq)]
+pub(crate) enum TableSearch {
+    Found(TableFound),
+    /// No plane passed; the reason is for the report.
+    NotFound(String),
+}
+
+#[derive(Clone, Debug, PartialEq)]
+pub(crate) struct TableFound {
+    /// Normal pointing from the table to the part.
+    pub plane: Plane,
+    /// Points within this distance (mm) of the plane, and all below it, are table.
+    pub threshold_mm: f32,
+}
+
+/// How to look for the table.
+pub(crate) struct TableSearchSettings {
+    /// RANSAC inlier distance (mm): set by the user, or one spacing by default.
+    pub ransac_threshold_mm: f32,
+    /// Set the final threshold to 3 standard deviations of the range noise on the table,
+    /// at least half the RANSAC distance (off when the user set the distance).
+    pub adapt_to_noise: bool,
+    pub min_fraction: f32,
+    pub iterations: u32,
+    /// The scan's point spacing (mm), to tell what stands on the plane from noise.
+    pub spacing_mm: f32,
+    pub seed: u64,
+}
+
+/// Planes tried before giving up: the table is the largest plane unless a face of the part
+/// is larger, so a second and third try finds it under a big flat part.
+const PLANE_TRIES: usize = 3;
+/// The table must be seen beyond the part's footprint on at least this many of 8 sides ...
+const SIDES_NEEDED: usize = 6;
+/// ... each side holding at least this fraction of the plane's points.
+const SIDE_SHARE: f64 = 0.02;
+
+/// Finds the table: the largest plane (among [`PLANE_TRIES`]) that holds at least
+/// `min_fraction` of the points and surrounds what stands on it (see [`support_sides`]).
+/// A face of the part is rejected by the second test: whatever else of the part there is
+/// lies above the face, not around it.
+pub(crate) fn find_table(points: &[[f32; 3]], settings: &TableSearchSettings) -> TableSearch {
+    let min_inliers = (settings.min_fraction as f64 * points.len() as f64).ceil() as usize;
+    let mut candidates: Vec<[f32; 3]> = points.to_vec();
+    let mut first_failure: Option<String> = None;
+    for attempt in 0..PLANE_TRIES {
+        let seed = settings.seed.wrapping_add(attempt as u64);
+        let Some((plane, inliers)) = ransac_plane(
+            &candidates,
+            settings.ransac_threshold_mm,
+            settings.iterations,
+            seed,
+        ) else {
+            break;
+        };
+        if inliers < min_inliers.max(3) {
+            let why = format!(
+                "the largest plane holds {:.1} % of the points (a table needs {:.1} %)",
+                100.0 * inliers as f64 / points.len() as f64,
+                100.0 * settings.min_fraction
+            );
+            first_failure.get_or_insert(why);
+            break;
+        }
+        let threshold_mm = if settings.adapt_to_noise {
+            noise_threshold(points, &plane, settings.ransac_threshold_mm)
+        } else {
+            settings.ransac_threshold_mm
+        };
+        let plane = part_side_up(points, plane, threshold_mm);
+        let sides = support_sides(points, &plane, threshold_mm, settings.spacing_mm);
+        if sides >= SIDES_NEEDED {
+            return TableSearch::Found(TableFound {
+                plane,
+                threshold_mm,
+            });
+        }
+        let why = format!(
+            "the largest plane is seen around the rest of the scan on {sides} of 8 sides \
+             (a table needs {SIDES_NEEDED}), so it is taken for a face of the part"
+        );
+        first_failure.get_or_insert(why);
+        candidates.retain(|&p| plane.signed_distance(p).abs() > threshold_mm);
+    }
+    TableSearch::NotFound(first_failure.unwrap_or_else(|| "no plane through the points".into()))
+}
+
+/// The table distance fitted to the range noise: 3 robust standard deviations (1.4826 x the
+/// median absolute residual, the normal-consistent MAD: common practice, no source) of the
+/// points near the plane, at least half of `base_mm`; iterated twice so a noise larger than
+/// the first guess widens the window it is measured in.
+fn noise_threshold(points: &[[f32; 3]], plane: &Plane, base_mm: f32) -> f32 {
+    let floor = 0.5 * base_mm;
+    let mut threshold = base_mm;
+    let mut residuals: Vec<f32> = Vec::with_capacity(points.len());
+    for _round in 0..2 {
+        let window = 3.0 * threshold;
+        residuals.clear();
+        residuals.extend(
+            points
+                .iter()
+                .map(|&p| plane.signed_distance(p).abs())
+                .filter(|&d| d <= window),
+        );
+        if residuals.is_empty() {
+            break;
+        }
+        let mid = residuals.len() / 2;
+        let (_, median, _) = residuals.select_nth_unstable_by(mid, f32::total_cmp);
+        threshold = floor.max(3.0 * 1.4826 * *median);
+    }
+    threshold
+}
+
+/// The plane turned so its normal points to the side holding more points beyond the
+/// threshold: the part stands above the table; below it there is only noise.
+fn part_side_up(points: &[[f32; 3]], plane: Plane, threshold_mm: f32) -> Plane {
+    let (mut above, mut below) = (0usize, 0usize);
+    for &p in points {
+        let s = plane.signed_distance(p);
+        if s > threshold_mm {
+            above += 1;
+        } else if s < -threshold_mm {
+            below += 1;
+        }
+    }
+    if below > above {
+        plane.flipped()
+    } else {
+        plane
+    }
+}
+
+/// Points above the plane count for the footprint only with at least this many others
+/// above it within [`SOLID_RADIUS_SPACINGS`] spacings: range noise just past the threshold
+/// is scattered thinly over the whole table and must not count as something standing on it.
+const SOLID_NEIGHBOURS: usize = 4;
+const SOLID_RADIUS_SPACINGS: f32 = 3.0;
+
+/// On how many of 8 sides (45° sectors around the centre of what stands on the plane) the
+/// plane's points reach beyond what stands on it. A table around a part is seen on all
+/// sides, however narrow the band of table around it; a face of a part is not (the rest of
+/// the part stands on its rim or over it). What stands on the plane: the points above the
+/// threshold with neighbours above it too (see [`SOLID_NEIGHBOURS`]); its reach on each side
+/// is the farthest of them in that sector, so a long thin part (a bolt lying down) is
+/// judged side by side, not by one radius.
+fn support_sides(points: &[[f32; 3]], plane: &Plane, threshold_mm: f32, spacing_mm: f32) -> usize {
+    let r = rotation_to_z(plane.normal);
+    let above: Vec<[f32; 3]> = points
+        .iter()
+        .filter(|&&p| plane.signed_distance(p) > threshold_mm)
+        .map(|&p| rotate(&r, p))
+        .collect();
+    let index = SpatialIndex::new(&above);
+    let radius = SOLID_RADIUS_SPACINGS * spacing_mm;
+    let solid: Vec<[f32; 2]> = above
+        .iter()
+        .filter(|&&q| {
+            let mut near = 0usize;
+            index.for_each_within(q, radius, |_, _| near += 1);
+            near > SOLID_NEIGHBOURS // the point itself is among them
+        })
+        .map(|q| [q[0], q[1]])
+        .collect();
+    if solid.is_empty() {
+        return 0;
+    }
+    let n = solid.len() as f64;
+    let centre = [
+        (solid.iter().map(|q| q[0] as f64).sum::<f64>() / n) as f32,
+        (solid.iter().map(|q| q[1] as f64).sum::<f64>() / n) as f32,
+    ];
+    let polar = |x: f32, y: f32| {
+        let (dx, dy) = (x - centre[0], y - centre[1]);
+        let turn = dy.atan2(dx) / std::f32::consts::TAU + 0.5; // 0..=1
+        (((turn * 8.0) as usize).min(7), dx.hypot(dy))
+    };
+    let mut reach = [0f32; 8];
+    for q in &solid {
+        let (side, dist) = polar(q[0], q[1]);
+        reach[side] = reach[side].max(dist);
+    }
+    let mut per_side = [0usize; 8];
+    let mut on_plane = 0usize;
+    for &p in points {
+        if plane.signed_distance(p).abs() > threshold_mm {
+            continue;
+        }
+        on_plane += 1;
+        let q = rotate(&r, p);
+        let (side, dist) = polar(q[0], q[1]);
+        if dist > reach[side] {
+            per_side[side] += 1;
+        }
+    }
+    let need = (SIDE_SHARE * on_plane as f64).max(1.0);
+    per_side.iter().filter(|&&n| n as f64 >= need).count()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Points on the known plane z = 0.3 x - 0.2 y + 5 (mm) with Gaussian noise along z,
+    /// and `clutter` uniform points in a box above it.
+    fn noisy_plane(n: usize, clutter: usize, sigma: f64, rng: &mut Rng) -> Vec<[f32; 3]> {
+        let mut pts: Vec<[f32; 3]> = (0..n)
+            .map(|_| {
+                let (x, y) = (rng.range(-100.0, 100.0), rng.range(-100.0, 100.0));
+                let z = 0.3 * x - 0.2 * y + 5.0 + sigma * rng.normal();
+                [x as f32, y as f32, z as f32]
+            })
+            .collect();
+        pts.extend((0..clutter).map(|_| {
+            let (x, y) = (rng.range(-30.0, 30.0), rng.range(-30.0, 30.0));
+            let z = 0.3 * x - 0.2 * y + 5.0 + rng.range(5.0, 60.0);
+            [x as f32, y as f32, z as f32]
+        }));
+        pts
+    }
+
+    /// The known plane's unit normal and offset: z - 0.3 x + 0.2 y - 5 = 0, normalised.
+    fn known_plane() -> Plane {
+        let n = [-0.3f32, 0.2, 1.0];
+        let len = norm(n);
+        Plane {
+            normal: n.map(|c| c / len),
+            offset_mm: -5.0 / len,
+        }
+    }
+
+    fn assert_close_plane(got: &Plane, want: &Plane, angle_deg: f32, offset_mm: f32) {
+        let (g, w) = if dot(got.normal, want.normal) < 0.0 {
+            (got.flipped(), *want)
+        } else {
+            (*got, *want)
+        };
+        let angle = dot(g.normal, w.normal).clamp(-1.0, 1.0).acos().to_degrees();
+        assert!(angle < angle_deg, "normal off by {angle}°: {g:?} vs {w:?}");
+        assert!(
+            (g.offset_mm - w.offset_mm).abs() < offset_mm,
+            "{g:?} vs {w:?}"
+        );
+    }
+
+    #[test]
+    fn ransac_recovers_a_known_plane_under_clutter() {
+        // Ground truth by construction: 40 % of the points on a plane, 60 % clutter.
+        let mut rng = Rng::new(3);
+        let pts = noisy_plane(4000, 6000, 0.2, &mut rng);
+        let (plane, inliers) = ransac_plane(&pts, 0.8, 1000, 9).unwrap();
+        assert_close_plane(&plane, &known_plane(), 0.2, 0.1);
+        assert!((3900..=4100).contains(&inliers), "{inliers}");
+        // Same seed, same answer.
+        assert_eq!(ransac_plane(&pts, 0.8, 1000, 9).unwrap(), (plane, inliers));
+    }
+
+    #[test]
+    fn ransac_on_too_few_or_degenerate_points_gives_none() {
+        assert!(ransac_plane(&[[0.0; 3], [1.0, 0.0, 0.0]], 1.0, 100, 0).is_none());
+        let line: Vec<[f32; 3]> = (0..50).map(|i| [i as f32, 0.0, 0.0]).collect();
+        assert!(ransac_plane(&line, 0.1, 100, 0).is_none());
+        assert!(ransac_plane(&vec![[2.0; 3]; 20], 0.1, 100, 0).is_none());
+    }
+
+    fn settings(threshold: f32, spacing_mm: f32) -> TableSearchSettings {
+        TableSearchSettings {
+            spacing_mm,
+            ransac_threshold_mm: threshold,
+            adapt_to_noise: true,
+            min_fraction: 0.1,
+            iterations: 1000,
+            seed: 1,
+        }
+    }
+
+    #[test]
+    fn table_is_found_with_the_part_above_and_noise_covered() {
+        let mut rng = Rng::new(4);
+        let mut pts = noisy_plane(8000, 3000, 0.5, &mut rng);
+        // A few points below the table (reflections) must not turn the plane over.
+        pts.extend((0..50).map(|i| [i as f32, 0.0, -40.0]));
+        let TableSearch::Found(t) = find_table(&pts, &settings(0.4, 2.0)) else {
+            panic!("no table")
+        };
+        assert_close_plane(&t.plane, &known_plane(), 0.3, 0.1);
+        assert!(t.plane.normal[2] > 0.0, "part is above: {:?}", t.plane);
+        // Noise sigma 0.5 mm (along z; 0.48 along the normal): the threshold widens from
+        // 0.4 to about 1.45 mm.
+        assert!((1.2..1.8).contains(&t.threshold_mm), "{}", t.threshold_mm);
+    }
+
+    #[test]
+    fn a_face_of_a_part_is_not_a_table() {
+        // A box surface without a table: its largest face has the rest of the box above it.
+        let mut rng = Rng::new(5);
+        let mut pts = Vec::new();
+        for _ in 0..6000 {
+            let (u, v) = (rng.range(-1.0, 1.0) as f32, rng.range(-1.0, 1.0) as f32);
+            let face = rng.below(5);
+            pts.push(match face {
+                0 | 1 => [60.0 * u, 40.0 * v, 0.0], // a large bottom face (twice the points)
+                2 => [60.0 * u, 40.0, 10.0 + 10.0 * v],
+                3 => [60.0, 40.0 * u, 10.0 + 10.0 * v],
+                _ => [60.0 * u, 40.0 * v, 20.0],
+            });
+        }
+        match find_table(&pts, &settings(0.3, 1.0)) {
+            TableSearch::NotFound(why) => assert!(why.contains("face of the part"), "{why}"),
+            TableSearch::Found(t) => panic!("took a face for the table: {t:?}"),
+        }
+    }
+
+    #[test]
+    fn too_small_a_plane_is_not_a_table() {
+        let mut rng = Rng::new(6);
+        let mut pts = noisy_plane(200, 0, 0.1, &mut rng);
+        pts.extend((0..5000).map(|_| [0, 0, 0].map(|_| rng.range(-100.0, 100.0) as f32)));
+        match find_table(&pts, &settings(0.3, 2.0)) {
+            TableSearch::NotFound(why) => assert!(why.contains("holds"), "{why}"),
+            TableSearch::Found(t) => panic!("{t:?}"),
+        }
+    }
+}

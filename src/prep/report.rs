@@ -1,0 +1,167 @@
+//! The clean-up report: each step's numbers, the table plane, warnings.
+
+use std::fmt;
+
+use serde::{Deserialize, Serialize};
+
+use super::size::PartSize;
+
+/// Points counted through the steps. Every input point is in exactly one of `non_finite`,
+/// `cropped`, `table`, `strays`, `other_clusters` or `kept`.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Counts {
+    pub input: usize,
+    pub non_finite: usize,
+    pub cropped: usize,
+    /// On the table plane or below it.
+    pub table: usize,
+    pub strays: usize,
+    /// In clusters other than the largest.
+    pub other_clusters: usize,
+    /// The part: the largest cluster.
+    pub kept: usize,
+    /// Occupied voxels of the part.
+    pub voxels: usize,
+    /// Repeated points added to reach the recipe's point count.
+    pub padded: usize,
+}
+
+/// What the table step found.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case", tag = "status")]
+pub enum PlaneReport {
+    /// Removed and levelled: `normal · p + offset_mm = 0` in the input frame, normal towards
+    /// the part.
+    Found {
+        normal: [f32; 3],
+        offset_mm: f32,
+        /// Points within this distance of the plane were table.
+        threshold_mm: f32,
+        /// Points within the threshold.
+        inliers: usize,
+        /// Points below the plane, beyond the threshold.
+        below: usize,
+    },
+    /// Looked for, none accepted; the cloud is used as it is.
+    NotFound { reason: String },
+    /// The recipe does not look for a table.
+    Off,
+}
+
+/// Something the user should know about a scan that was still prepared.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case", tag = "warning")]
+pub enum Warning {
+    /// No table plane was accepted: no up axis, the cloud keeps its own frame.
+    NoTable { reason: String },
+    /// The second-largest object is large: maybe two parts in one scan.
+    SecondObject { largest: usize, second: usize },
+    /// The voxel grid would have left fewer points than wanted, so the part's own points
+    /// were sampled.
+    VoxelGridSkipped { voxels: usize, wanted: usize },
+    /// The part had fewer points than wanted; the rest repeat them.
+    Padded { points: usize, wanted: usize },
+}
+
+impl fmt::Display for Warning {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Warning::NoTable { reason } => write!(f, "no table plane: {reason}; up axis not known"),
+            Warning::SecondObject { largest, second } => write!(
+                f,
+                "a second object of {second} points beside the part of {largest}: two parts in one scan?"
+            ),
+            Warning::VoxelGridSkipped { voxels, wanted } => write!(
+                f,
+                "voxel grid would leave {voxels} points (< {wanted}): sampled the part's own points"
+            ),
+            Warning::Padded { points, wanted } => write!(
+                f,
+                "only {points} points on the part: repeated them to make {wanted}"
+            ),
+        }
+    }
+}
+
+/// What the recipe did to one scan.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Report {
+    pub counts: Counts,
+    /// Median nearest-neighbour distance of the whole scan (mm).
+    pub scan_spacing_mm: f32,
+    /// The same after the table is removed (mm): the part's spacing.
+    pub part_spacing_mm: f32,
+    pub plane: PlaneReport,
+    /// Points whose mean neighbour distance exceeded this (mm) were strays.
+    pub stray_limit_mm: f32,
+    pub cluster_radius_mm: f32,
+    /// Clusters found after the strays were removed.
+    pub clusters: usize,
+    /// Points in the second-largest cluster (0 if none).
+    pub second_cluster: usize,
+    pub voxel_mm: f32,
+    pub size: PartSize,
+    pub warnings: Vec<Warning>,
+}
+
+impl fmt::Display for Report {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        let c = &self.counts;
+        let row = |f: &mut fmt::Formatter<'_>, step: &str, removed: usize, note: String| {
+            writeln!(f, "  {step:<15} {removed:>9}  {note}")
+        };
+        writeln!(
+            f,
+            "  {:<15} {:>9}  spacing {:.3} mm",
+            "input points", c.input, self.scan_spacing_mm
+        )?;
+        writeln!(f, "  {:<15} {:>9}", "step", "removed")?;
+        row(f, "non-finite", c.non_finite, String::new())?;
+        row(f, "crop box", c.cropped, String::new())?;
+        let table_note = match &self.plane {
+            PlaneReport::Found {
+                normal,
+                offset_mm,
+                threshold_mm,
+                inliers,
+                below,
+            } => format!(
+                "normal ({:.3}, {:.3}, {:.3}), offset {:.2} mm, within {:.2} mm: {inliers} on, {below} below",
+                normal[0], normal[1], normal[2], offset_mm, threshold_mm
+            ),
+            PlaneReport::NotFound { .. } => "none found".into(),
+            PlaneReport::Off => "not looked for".into(),
+        };
+        row(f, "table plane", c.table, table_note)?;
+        row(
+            f,
+            "strays",
+            c.strays,
+            format!("mean neighbour distance over {:.3} mm", self.stray_limit_mm),
+        )?;
+        row(
+            f,
+            "other objects",
+            c.other_clusters,
+            format!(
+                "{} clusters at {:.3} mm, second largest {} points",
+                self.clusters, self.cluster_radius_mm, self.second_cluster
+            ),
+        )?;
+        writeln!(
+            f,
+            "  {:<15} {:>9}  part spacing {:.3} mm; {} voxels of {:.3} mm; {} padded",
+            "kept", c.kept, self.part_spacing_mm, c.voxels, self.voxel_mm, c.padded
+        )?;
+        let [a, b, h] = self.size.extents_mm;
+        writeln!(
+            f,
+            "  size: radius {:.2} mm, footprint {:.2} x {:.2} mm, height {:.2} mm",
+            self.size.radius_mm, a, b, h
+        )?;
+        for w in &self.warnings {
+            writeln!(f, "  warning: {w}")?;
+        }
+        Ok(())
+    }
+}

@@ -1,0 +1,214 @@
+//! Step 6: centre and scale, keeping the true size. Two part types may differ only in size
+//! (an M8 and an M12 nut), so the size in mm travels beside the unit-radius cloud.
+
+use serde::{Deserialize, Serialize};
+
+/// The true size of a prepared part, in mm.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+pub struct PartSize {
+    /// Largest distance of a point from the centroid.
+    pub radius_mm: f32,
+    /// `[long, short, height]`: the sides of the smallest-area rectangle around the
+    /// footprint (the points seen from above, +Z), longer first, then the extent along the
+    /// up axis. Turning the part about the up axis does not change them (a square stays a
+    /// square, which principal axes would not guarantee).
+    pub extents_mm: [f32; 3],
+}
+
+/// Sizes below this (mm) are taken as this in [`PartSize::log_features`], so a flat or
+/// single-point scan gives finite features.
+const SMALLEST_MM: f32 = 1e-3;
+
+impl PartSize {
+    /// `[ln radius, ln long, ln short, ln height]` with sizes in mm, each size first raised
+    /// to at least 0.001 mm: the network's size input (a log so that a 10 % larger part is
+    /// the same step at any size).
+    pub fn log_features(&self) -> [f32; 4] {
+        let [a, b, c] = self.extents_mm;
+        [self.radius_mm, a, b, c].map(|v| v.max(SMALLEST_MM).ln())
+    }
+}
+
+/// Measures the points (mm, up axis +Z): centroid, radius and extents. `None` if empty.
+pub(crate) fn measure(points: &[[f32; 3]]) -> Option<([f32; 3], PartSize)> {
+    if points.is_empty() {
+        return None;
+    }
+    let n = points.len() as f64;
+    let mut c = [0f64; 3];
+    for p in points {
+        for a in 0..3 {
+            c[a] += p[a] as f64;
+        }
+    }
+    let c = c.map(|s| s / n);
+    let mut radius_sq = 0f64;
+    let (mut zlo, mut zhi) = (f64::INFINITY, f64::NEG_INFINITY);
+    let mut footprint: Vec<[f64; 2]> = Vec::with_capacity(points.len());
+    for p in points {
+        let d = [0, 1, 2].map(|a| p[a] as f64 - c[a]);
+        radius_sq = radius_sq.max(d[0] * d[0] + d[1] * d[1] + d[2] * d[2]);
+        zlo = zlo.min(d[2]);
+        zhi = zhi.max(d[2]);
+        footprint.push([d[0], d[1]]);
+    }
+    let [long, short] = smallest_rectangle(&mut footprint);
+    let size = PartSize {
+        radius_mm: radius_sq.sqrt() as f32,
+        extents_mm: [long as f32, short as f32, (zhi - zlo) as f32],
+    };
+    Some((c.map(|x| x as f32), size))
+}
+
+/// Sides `[long, short]` of the smallest-area rectangle around the 2D points (reorders
+/// them). It has a side along an edge of the convex hull (Freeman and Shapira, "Determining
+/// the minimum-area encasing rectangle for an arbitrary closed curve", CACM 1975), so each
+/// hull edge is tried. Fewer than 3 distinct points give the bounding box of what there is.
+fn smallest_rectangle(points: &mut [[f64; 2]]) -> [f64; 2] {
+    let hull = convex_hull(points);
+    let mut best = (f64::INFINITY, [0.0, 0.0]);
+    for (i, &a) in hull.iter().enumerate() {
+        let b = hull[(i + 1) % hull.len()];
+        let (dx, dy) = (b[0] - a[0], b[1] - a[1]);
+        let len = dx.hypot(dy);
+        if len == 0.0 {
+            continue;
+        }
+        let (ux, uy) = (dx / len, dy / len);
+        let mut span = [(f64::INFINITY, f64::NEG_INFINITY); 2];
+        for p in &hull {
+            let along = p[0] * ux + p[1] * uy;
+            let across = -p[0] * uy + p[1] * ux;
+            span[0] = (span[0].0.min(along), span[0].1.max(along));
+            span[1] = (span[1].0.min(across), span[1].1.max(across));
+        }
+        let (w, h) = (span[0].1 - span[0].0, span[1].1 - span[1].0);
+        if w * h < best.0 {
+            best = (w * h, [w.max(h), w.min(h)]);
+        }
+    }
+    if best.0.is_finite() {
+        best.1
+    } else {
+        [0.0, 0.0]
+    }
+}
+
+/// Convex hull, counter-clockwise, by Andrew's monotone chain (1979); collinear points
+/// dropped. Sorts `points`.
+fn convex_hull(points: &mut [[f64; 2]]) -> Vec<[f64; 2]> {
+    points.sort_unstable_by(|a, b| a[0].total_cmp(&b[0]).then(a[1].total_cmp(&b[1])));
+    let turn = |o: [f64; 2], a: [f64; 2], b: [f64; 2]| {
+        (a[0] - o[0]) * (b[1] - o[1]) - (a[1] - o[1]) * (b[0] - o[0])
+    };
+    let mut hull: Vec<[f64; 2]> = Vec::with_capacity(64);
+    for pass in 0..2 {
+        let floor = hull.len();
+        let mut chain = |p: [f64; 2]| {
+            while hull.len() >= floor + 2
+                && turn(hull[hull.len() - 2], hull[hull.len() - 1], p) <= 0.0
+            {
+                hull.pop();
+            }
+            hull.push(p);
+        };
+        if pass == 0 {
+            points.iter().for_each(|&p| chain(p));
+        } else {
+            points.iter().rev().for_each(|&p| chain(p));
+        }
+        hull.pop(); // the last point of each chain starts the other
+    }
+    hull
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn box_corners(a: f32, b: f32, h: f32) -> Vec<[f32; 3]> {
+        let mut pts = Vec::new();
+        for x in [0.0, a] {
+            for y in [0.0, b] {
+                for z in [0.0, h] {
+                    pts.push([x + 100.0, y - 50.0, z + 7.0]);
+                }
+            }
+        }
+        pts
+    }
+
+    #[test]
+    fn box_size_by_hand_and_unchanged_by_turning_about_up() {
+        // Corners of a 40 x 10 x 6 mm box: radius is half the diagonal,
+        // sqrt(40² + 10² + 6²) / 2 = 20.83 mm.
+        let pts = box_corners(40.0, 10.0, 6.0);
+        let (c, size) = measure(&pts).unwrap();
+        assert!(
+            (c[0] - 120.0).abs() < 1e-4 && (c[1] + 45.0).abs() < 1e-4 && (c[2] - 10.0).abs() < 1e-4
+        );
+        assert!((size.radius_mm - 20.833).abs() < 1e-2, "{size:?}");
+        for (got, want) in size.extents_mm.iter().zip([40.0, 10.0, 6.0]) {
+            assert!((got - want).abs() < 1e-3, "{size:?}");
+        }
+        for deg in [17.0f32, 90.0, 133.0] {
+            let (s, co) = deg.to_radians().sin_cos();
+            let turned: Vec<[f32; 3]> = pts
+                .iter()
+                .map(|p| [co * p[0] - s * p[1], s * p[0] + co * p[1], p[2]])
+                .collect();
+            let (_, t) = measure(&turned).unwrap();
+            for (got, want) in t.extents_mm.iter().zip(size.extents_mm) {
+                assert!((got - want).abs() < 1e-3, "{deg}: {t:?}");
+            }
+            assert!((t.radius_mm - size.radius_mm).abs() < 1e-3);
+        }
+    }
+
+    #[test]
+    fn a_square_footprint_stays_a_square_when_turned() {
+        // A 30 x 30 mm square outline: principal axes are undefined, the rectangle is not.
+        let mut pts = Vec::new();
+        for i in 0..=30 {
+            let t = i as f32;
+            pts.extend([[t, 0.0, 0.0], [t, 30.0, 0.0], [0.0, t, 1.0], [30.0, t, 1.0]]);
+        }
+        for deg in [0.0f32, 10.0, 45.0, 71.0] {
+            let (s, co) = deg.to_radians().sin_cos();
+            let turned: Vec<[f32; 3]> = pts
+                .iter()
+                .map(|p| [co * p[0] - s * p[1], s * p[0] + co * p[1], p[2]])
+                .collect();
+            let (_, size) = measure(&turned).unwrap();
+            assert!((size.extents_mm[0] - 30.0).abs() < 1e-3, "{deg}: {size:?}");
+            assert!((size.extents_mm[1] - 30.0).abs() < 1e-3, "{deg}: {size:?}");
+            assert!((size.extents_mm[2] - 1.0).abs() < 1e-6);
+        }
+    }
+
+    #[test]
+    fn hull_of_collinear_and_repeated_points() {
+        let mut line = vec![[0.0, 0.0], [1.0, 1.0], [2.0, 2.0], [2.0, 2.0]];
+        let sides = smallest_rectangle(&mut line);
+        assert!(
+            (sides[0] - 8f64.sqrt()).abs() < 1e-12 && sides[1].abs() < 1e-12,
+            "{sides:?}"
+        );
+        assert_eq!(smallest_rectangle(&mut [[1.0, 1.0]; 3]), [0.0, 0.0]);
+    }
+
+    #[test]
+    fn log_features_are_finite_for_a_point() {
+        let (_, size) = measure(&[[1.0, 2.0, 3.0]]).unwrap();
+        assert_eq!(size.radius_mm, 0.0);
+        let f = size.log_features();
+        assert!(f.iter().all(|v| v.is_finite()));
+        assert!((f[0] - 1e-3f32.ln()).abs() < 1e-6);
+        let s = PartSize {
+            radius_mm: std::f32::consts::E,
+            extents_mm: [1.0, 1.0, 1.0],
+        };
+        assert!((s.log_features()[0] - 1.0).abs() < 1e-6);
+        assert!(measure(&[]).is_none());
+    }
+}
