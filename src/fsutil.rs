@@ -27,13 +27,16 @@ pub fn write_atomic(
     result
 }
 
-/// `dir/.name.partsift-tmp-<pid>`: hidden, in the same folder (so rename stays on one file system).
+/// `dir/.name.partsift-tmp-<pid>-<n>`: hidden, in the same folder (so rename stays on one file
+/// system), and unique per call so two threads writing the same path never share one.
 fn temporary_sibling(path: &Path) -> PathBuf {
+    static NEXT: AtomicU64 = AtomicU64::new(0);
+    let n = NEXT.fetch_add(1, Ordering::Relaxed);
     let name = path
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
-    path.with_file_name(format!(".{name}.partsift-tmp-{}", std::process::id()))
+    path.with_file_name(format!(".{name}.partsift-tmp-{}-{n}", std::process::id()))
 }
 
 #[cfg(test)]

@@ -19,8 +19,8 @@ use std::path::{Path, PathBuf};
 mod pcd;
 mod ply;
 mod surface;
-mod xyz;
 pub mod write;
+mod xyz;
 
 /// Points of one scan, with optional per-point normals and colours (same length as `positions`).
 #[derive(Clone, Debug, Default, PartialEq)]
