@@ -532,8 +532,14 @@ fn read_binary(
                 Some(stride) => {
                     let offsets = element.fixed_offsets();
                     let end = pos + count * stride;
-                    for record in bytes[pos..end].chunks_exact(stride) {
-                        layout.push_binary(&mut points, record, &offsets, big_endian);
+                    if stride > 0 {
+                        layout.push_records(
+                            &mut points,
+                            &bytes[pos..end],
+                            stride,
+                            &offsets,
+                            big_endian,
+                        );
                     }
                     pos = end;
                 }
