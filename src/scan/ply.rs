@@ -555,7 +555,6 @@ fn read_binary(
             }
         } else if let Some(faces) = plan.faces.filter(|f| f.element == e) {
             let (list, len_type, item) = (faces.property, faces.len_type, faces.item);
-            triangles.reserve(count);
             for face in 0..count {
                 let len =
                     walk_record(bytes, pos, element, big_endian, &mut offsets).map_err(fail)?;
