@@ -273,9 +273,8 @@ pub(crate) fn decode(path: &Path, bytes: &[u8]) -> Result<Decoded, ScanError> {
                 count_that_fits("POINTS", header.points as u64, record, left).map_err(at_body)?;
             let mut points = layout.new_cloud(n);
             if record > 0 {
-                for r in bytes[start..start + n * record].chunks_exact(record) {
-                    layout.push_binary(&mut points, r, &offsets, false);
-                }
+                let region = &bytes[start..start + n * record];
+                layout.push_records(&mut points, region, record, &offsets, false);
             }
             (ScanFormat::PcdBinary, points)
         }
@@ -284,9 +283,7 @@ pub(crate) fn decode(path: &Path, bytes: &[u8]) -> Result<Decoded, ScanError> {
                 .map_err(|(at, m)| ScanError::at_byte(path, at, m))?;
             let mut points = layout.new_cloud(header.points);
             if record > 0 {
-                for r in aos.chunks_exact(record) {
-                    layout.push_binary(&mut points, r, &offsets, false);
-                }
+                layout.push_records(&mut points, &aos, record, &offsets, false);
             }
             (ScanFormat::PcdBinaryCompressed, points)
         }

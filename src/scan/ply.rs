@@ -532,8 +532,14 @@ fn read_binary(
                 Some(stride) => {
                     let offsets = element.fixed_offsets();
                     let end = pos + count * stride;
-                    for record in bytes[pos..end].chunks_exact(stride) {
-                        layout.push_binary(&mut points, record, &offsets, big_endian);
+                    if stride > 0 {
+                        layout.push_records(
+                            &mut points,
+                            &bytes[pos..end],
+                            stride,
+                            &offsets,
+                            big_endian,
+                        );
                     }
                     pos = end;
                 }
@@ -549,7 +555,6 @@ fn read_binary(
             }
         } else if let Some(faces) = plan.faces.filter(|f| f.element == e) {
             let (list, len_type, item) = (faces.property, faces.len_type, faces.item);
-            triangles.reserve(count);
             for face in 0..count {
                 let len =
                     walk_record(bytes, pos, element, big_endian, &mut offsets).map_err(fail)?;
