@@ -15,8 +15,13 @@ use crate::rng::Rng;
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Serialize, Deserialize)]
 #[serde(rename_all = "lowercase")]
 pub enum Arch {
+    /// DGCNN's classifier: EdgeConv layers on graphs rebuilt in feature space.
     EdgeConv,
+    /// A shared per-point MLP and max pooling, no graph. Without PointNet's input and
+    /// feature transform nets: the clean-up recipe already centres, scales and turns the
+    /// clouds up, and augmentation turns them about that axis.
     PointNet,
+    /// Graph convolution on a static k-NN graph of the points in space.
     Gcn,
 }
 
@@ -82,7 +87,10 @@ pub struct NetConfig {
     pub preset: Preset,
     /// Number of part types, at least 1.
     pub classes: usize,
-    /// Whether the part's size joins the pooled features (see [`Network::train_batch`]).
+    /// Whether the part's size (the four `size` values of each sample, through a small
+    /// linear + batch norm + LeakyReLU layer) joins the pooled features before the fully
+    /// connected layers. Off, the network sees only the unit-radius cloud and cannot tell
+    /// two parts of the same shape and different size apart.
     pub size_aware: bool,
 }
 

@@ -47,8 +47,8 @@ enum LayerCaches {
 
 struct PoolCache {
     max: MaxPoolCache,
-    /// Points per cloud; `Some` when mean pooling joined max pooling.
-    mean_over: Option<usize>,
+    /// Mean pooling joined max pooling (its half of the pooled features comes second).
+    with_mean: bool,
     points: usize,
 }
 
@@ -162,7 +162,7 @@ impl Trunk {
             embed,
             pool: PoolCache {
                 max: max_cache,
-                mean_over: with_mean.then_some(n),
+                with_mean,
                 points: n,
             },
         };
@@ -179,16 +179,14 @@ impl Trunk {
         input_grad: bool,
     ) -> Option<Batch> {
         let n = cache.pool.points;
-        let dfeatures = match cache.pool.mean_over {
-            Some(group) => {
-                let half = dpooled.cols / 2;
-                let parts = split_cols(dpooled, &[half, half]);
-                let mut d = MaxPool { group }.backward(&cache.pool.max, &parts[0]);
-                let dmean = MeanPool { group }.backward(&parts[1]);
-                add_into(&mut d.data, &dmean.data);
-                d
-            }
-            None => MaxPool { group: n }.backward(&cache.pool.max, dpooled),
+        let dfeatures = if cache.pool.with_mean {
+            let half = dpooled.cols / 2;
+            let parts = split_cols(dpooled, &[half, half]);
+            let mut d = MaxPool { group: n }.backward(&cache.pool.max, &parts[0]);
+            add_into(&mut d.data, &MeanPool { group: n }.backward(&parts[1]).data);
+            d
+        } else {
+            MaxPool { group: n }.backward(&cache.pool.max, dpooled)
         };
         match (self, cache.layers) {
             (Trunk::EdgeConv { layers, embed }, LayerCaches::EdgeConv(caches)) => {
@@ -203,16 +201,13 @@ impl Trunk {
             (Trunk::PointNet { layers }, LayerCaches::PointNet(caches)) => {
                 let mut d = dfeatures;
                 for (i, (layer, layer_cache)) in layers.iter().zip(caches).enumerate().rev() {
-                    match layer.backward(
+                    d = layer.backward(
                         params,
                         layer_cache,
                         d,
                         grads.as_deref_mut(),
                         input_grad || i > 0,
-                    ) {
-                        Some(dx) => d = dx,
-                        None => return None,
-                    }
+                    )?;
                 }
                 Some(d)
             }

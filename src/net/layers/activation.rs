@@ -26,11 +26,11 @@ impl LeakyRelu {
             .par_chunks_mut(ELEMENTS_PER_TASK)
             .zip(positive.par_chunks_mut(ELEMENTS_PER_TASK))
             .for_each(|(ys, ps)| {
+                // Branch-free (a select, not a jump): the signs are random, so a branch would
+                // be mispredicted half the time (measured 3x slower).
                 for (v, p) in ys.iter_mut().zip(ps) {
                     *p = *v > 0.0;
-                    if !*p {
-                        *v *= self.slope;
-                    }
+                    *v *= if *p { 1.0 } else { self.slope };
                 }
             });
         (y, LeakyReluCache { positive })
@@ -45,9 +45,7 @@ impl LeakyRelu {
             .zip(cache.positive.par_chunks(ELEMENTS_PER_TASK))
             .for_each(|(ds, ps)| {
                 for (d, &p) in ds.iter_mut().zip(ps) {
-                    if !p {
-                        *d *= self.slope;
-                    }
+                    *d *= if p { 1.0 } else { self.slope };
                 }
             });
         dx

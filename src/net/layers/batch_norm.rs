@@ -98,9 +98,12 @@ impl BatchNorm {
             .zip(normalized.data.par_chunks_mut(chunk))
             .for_each(|(ys, xs)| {
                 for (yr, xr) in ys.chunks_exact_mut(c).zip(xs.chunks_exact_mut(c)) {
-                    for j in 0..c {
-                        xr[j] = (xr[j] - mean[j]) * inv_std[j];
-                        yr[j] = gamma[j] * xr[j] + beta[j];
+                    let per_channel = mean.iter().zip(&inv_std).zip(gamma.iter().zip(beta));
+                    for ((y, x), ((m, s), (g, b))) in
+                        yr.iter_mut().zip(xr.iter_mut()).zip(per_channel)
+                    {
+                        *x = (*x - m) * s;
+                        *y = g * *x + b;
                     }
                 }
             });
@@ -136,9 +139,10 @@ impl BatchNorm {
                 .chunks_exact(c)
                 .zip(x_hat.sample(s).chunks_exact(c))
             {
-                for j in 0..c {
-                    dbeta[j] += dr[j] as f64;
-                    dgamma[j] += dr[j] as f64 * xr[j] as f64;
+                for (((sb, sg), &d), &x) in dbeta.iter_mut().zip(dgamma.iter_mut()).zip(dr).zip(xr)
+                {
+                    *sb += d as f64;
+                    *sg += d as f64 * x as f64;
                 }
             }
         });
@@ -168,8 +172,9 @@ impl BatchNorm {
             .zip(x_hat.data.par_chunks(chunk))
             .for_each(|(ds, xs)| {
                 for (dr, xr) in ds.chunks_exact_mut(c).zip(xs.chunks_exact(c)) {
-                    for j in 0..c {
-                        dr[j] = scale[j] * (dr[j] - mean_dy[j] - xr[j] * mean_dy_xhat[j]);
+                    let per_channel = scale.iter().zip(mean_dy.iter().zip(&mean_dy_xhat));
+                    for ((d, x), (s, (mdy, mdx))) in dr.iter_mut().zip(xr).zip(per_channel) {
+                        *d = s * (*d - mdy - x * mdx);
                     }
                 }
             });

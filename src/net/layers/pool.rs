@@ -44,11 +44,10 @@ impl MaxPool {
                     yr.copy_from_slice(&rows[..c]);
                     wr.fill(0);
                     for (r, row) in rows.chunks_exact(c).enumerate().skip(1) {
-                        for j in 0..c {
-                            if row[j] > yr[j] {
-                                yr[j] = row[j];
-                                wr[j] = r as u32;
-                            }
+                        for ((best, winner), &v) in yr.iter_mut().zip(wr.iter_mut()).zip(row) {
+                            let better = v > *best;
+                            *best = if better { v } else { *best };
+                            *winner = if better { r as u32 } else { *winner };
                         }
                     }
                 }
