@@ -198,10 +198,20 @@ impl Recipe {
         // 4. the largest cluster
         let part_spacing_mm = strays.spacing_mm;
         let cluster_radius_mm = s.cluster_radius_spacings * part_spacing_mm;
-        let clusters = cluster::euclidean_clusters(&index, &points, &active, cluster_radius_mm);
-        let (largest, second) = clusters.two_largest();
+        let mut clusters = cluster::euclidean_clusters(&index, &points, &active, cluster_radius_mm);
         // Not every point can be a stray (a stray is above the mean), so there is a cluster.
-        let largest = largest.unwrap_or(0);
+        let largest = clusters.two_largest().0.unwrap_or(0);
+        let members = (0..points.len()).filter(|&i| clusters.labels[i] == largest);
+        let largest_radius_mm = reach_from_centroid(&points, members);
+        let piece_min = (clusters.sizes[largest as usize] / 100).max(1);
+        let joined = cluster::join_pieces(
+            &points,
+            &mut clusters,
+            largest,
+            s.cluster_join_fraction * largest_radius_mm,
+            piece_min,
+        );
+        let second = clusters.two_largest().1;
         let largest_size = clusters.sizes.get(largest as usize).copied().unwrap_or(0);
         let second_size = second.map_or(0, |l| clusters.sizes[l as usize]);
         if second_size as f64 >= s.second_cluster_warn_fraction as f64 * largest_size as f64
@@ -236,11 +246,8 @@ impl Recipe {
             part.clone()
         };
         counts.voxels = even.len();
-        if even.len() < s.points && part.len() > even.len() {
-            warnings.push(Warning::VoxelGridSkipped {
-                voxels: even.len(),
-                wanted: s.points,
-            });
+        let voxel_grid_skipped = even.len() < s.points && part.len() > even.len();
+        if voxel_grid_skipped {
             even = part;
         }
         let mut picked = farthest_point_sample(&even, s.points, 0);
@@ -288,9 +295,11 @@ impl Recipe {
             plane: plane_report,
             stray_limit_mm: strays.limit_mm,
             cluster_radius_mm,
-            clusters: clusters.sizes.len(),
+            clusters: clusters.sizes.iter().filter(|&&n| n > 0).count(),
+            joined_clusters: joined,
             second_cluster: second_size,
             voxel_mm,
+            voxel_grid_skipped,
             size,
             warnings,
         };
@@ -344,6 +353,17 @@ fn measure_spacing(points: &[[f32; 3]]) -> f32 {
         })
         .collect();
     strays::median(&mut nearest)
+}
+
+/// Largest distance (mm) of the points at `indices` from their centroid; 0 if none.
+fn reach_from_centroid(points: &[[f32; 3]], indices: impl Iterator<Item = usize> + Clone) -> f32 {
+    let Some(c) = geom::centroid_of(points, indices.clone()) else {
+        return 0.0;
+    };
+    let c = c.map(|v| v as f32);
+    indices
+        .map(|i| geom::norm(geom::sub(points[i], c)))
+        .fold(0.0, f32::max)
 }
 
 /// Step 2's removal: drops the points within the table threshold or below it (keeping the

@@ -19,8 +19,8 @@ pub struct RecipeSettings {
     pub table_plane: bool,
     /// Distance from the table plane (mm) within which a point is table. `None`: RANSAC
     /// looks for the plane within `table_distance_spacings` spacings, then the distance is
-    /// set to 3 standard deviations of the measured range noise on the table (at least
-    /// half the search distance), so a thin part (a washer) is not taken with the table.
+    /// set to 3 standard deviations of the measured range noise on the table (at least half
+    /// a spacing), so a thin part (a washer) is not taken with the table.
     pub table_distance_mm: Option<f32>,
     /// The table distance in point spacings when `table_distance_mm` is `None` (0.5 to 20).
     pub table_distance_spacings: f32,
@@ -37,6 +37,10 @@ pub struct RecipeSettings {
     /// Two points belong to the same object when closer than this many point spacings
     /// (1 to 50).
     pub cluster_radius_spacings: f32,
+    /// Join to the part any cluster (of at least 1 % of its points) that comes within this
+    /// fraction of the part's radius: pieces of one part that a depth step separates, such
+    /// as a screw head standing over its shank (0 to 1; 0 joins nothing).
+    pub cluster_join_fraction: f32,
     /// Warn when the second-largest object has at least this fraction of the largest
     /// one's points (0.01 to 1).
     pub second_cluster_warn_fraction: f32,
@@ -59,6 +63,7 @@ impl Default for RecipeSettings {
             stray_neighbours: 16,
             stray_std_ratio: 3.0,
             cluster_radius_spacings: 3.0,
+            cluster_join_fraction: 0.75,
             second_cluster_warn_fraction: 0.25,
             voxel_size_mm: None,
             voxel_size_spacings: 1.5,
@@ -156,6 +161,13 @@ impl RecipeSettings {
             1.0,
             50.0,
             "1 to 50",
+        )?;
+        check_range(
+            "cluster_join_fraction",
+            s.cluster_join_fraction,
+            0.0,
+            1.0,
+            "0 to 1",
         )?;
         check_range(
             "second_cluster_warn_fraction",
@@ -319,6 +331,16 @@ mod tests {
             assert_eq!(
                 rejected(|s| s.cluster_radius_spacings = v),
                 "cluster_radius_spacings"
+            );
+        }
+    }
+
+    #[test]
+    fn bad_cluster_join_fraction_is_rejected() {
+        for v in [-0.1, 1.1, f32::NAN] {
+            assert_eq!(
+                rejected(|s| s.cluster_join_fraction = v),
+                "cluster_join_fraction"
             );
         }
     }
