@@ -507,6 +507,68 @@ mod tests {
     }
 
     #[test]
+    fn a_wall_with_table_on_both_sides_is_not_the_table() {
+        // Sensor at the origin looking down -z: a table at z = -100 and a wall x = 0 rising
+        // from it with more points than the table; the wall has table on both sides.
+        let mut rng = Rng::new(7);
+        let mut pts: Vec<[f32; 3]> = (0..5000)
+            .map(|_| {
+                [
+                    0.05 * rng.normal() as f32,
+                    rng.range(-40.0, 40.0) as f32,
+                    rng.range(-100.0, -40.0) as f32,
+                ]
+            })
+            .collect();
+        pts.extend((0..4000).map(|_| {
+            let x = rng.range(10.0, 80.0) * if rng.uniform() < 0.5 { -1.0 } else { 1.0 };
+            [
+                x as f32,
+                rng.range(-80.0, 80.0) as f32,
+                (-100.0 + 0.05 * rng.normal()) as f32,
+            ]
+        }));
+        let TableSearch::Found(t) = find_table(&pts, &settings(0.2, 1.0)) else {
+            panic!("no table")
+        };
+        assert!(t.plane.normal[2] > 0.999, "{t:?}");
+        assert!((t.plane.offset_mm - 100.0).abs() < 0.1, "{t:?}");
+    }
+
+    #[test]
+    fn a_face_seen_from_the_front_is_not_a_table() {
+        // No table: a box top facing the sensor at the origin, its sides going away from it.
+        let mut rng = Rng::new(8);
+        let mut pts: Vec<[f32; 3]> = (0..4000)
+            .map(|_| {
+                [
+                    rng.range(-30.0, 30.0) as f32,
+                    rng.range(-20.0, 20.0) as f32,
+                    -50.0,
+                ]
+            })
+            .collect();
+        pts.extend((0..300).map(|_| {
+            [
+                30.0,
+                rng.range(-20.0, 20.0) as f32,
+                rng.range(-80.0, -50.0) as f32,
+            ]
+        }));
+        pts.extend((0..300).map(|_| {
+            [
+                rng.range(-30.0, 30.0) as f32,
+                20.0,
+                rng.range(-80.0, -50.0) as f32,
+            ]
+        }));
+        match find_table(&pts, &settings(0.2, 1.0)) {
+            TableSearch::NotFound(why) => assert!(why.contains("behind"), "{why}"),
+            TableSearch::Found(t) => panic!("took a face for the table: {t:?}"),
+        }
+    }
+
+    #[test]
     fn too_small_a_plane_is_not_a_table() {
         let mut rng = Rng::new(6);
         let mut pts = noisy_plane(200, 0, 0.1, &mut rng);
