@@ -11,7 +11,7 @@ use std::time::Instant;
 use partsift::graph::spatial::{knn_graph, SpatialIndex};
 use partsift::prep::{farthest_point_sample, ransac_plane, voxel_centroids, Recipe};
 use partsift::scan::PointCloud;
-use prep_scene::Scene;
+use prep_scene::{Scene, Shape, Truth};
 
 const RUNS: usize = 11;
 
@@ -81,11 +81,35 @@ fn measure(threads: usize, cloud: &PointCloud) {
 }
 
 fn main() {
-    let scan = Scene::default().scan();
-    let cloud = PointCloud::from_positions(scan.points);
     let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
-    measure(1, &cloud);
-    if cores > 1 {
-        measure(cores, &cloud);
+    // A small part on a large table (few part points), then a large part filling a third of
+    // the view (tens of thousands of part points: the heavy case for steps 3 to 5).
+    let scenes = [
+        ("small part", Scene::default()),
+        (
+            "large part",
+            Scene {
+                part: Shape::Box {
+                    at: [0.0, 0.0],
+                    size: [150.0, 110.0, 50.0],
+                    yaw_deg: 20.0,
+                },
+                table_radius: 250.0,
+                ..Scene::default()
+            },
+        ),
+    ];
+    for (name, scene) in scenes {
+        let scan = scene.scan();
+        let part = scan.truth.iter().filter(|&&t| t == Truth::Part).count();
+        println!(
+            "== {name}: {} points, {part} on the part",
+            scan.points.len()
+        );
+        let cloud = PointCloud::from_positions(scan.points);
+        measure(1, &cloud);
+        if cores > 1 {
+            measure(cores, &cloud);
+        }
     }
 }
