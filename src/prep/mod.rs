@@ -5,9 +5,11 @@
 //! radius, table normal +Z, with the part's [`PartSize`] in mm, the [`Fate`] of every input
 //! point and a [`Report`] of each step's numbers. The steps, each in its own file:
 //! 1. drop non-finite points, optional crop box (here);
-//! 2. table plane: RANSAC, support test, level the cloud (`plane.rs`);
+//! 2. table plane: RANSAC, refit to the measured range noise, tests that it is the table
+//!    and not a face of the part, level the cloud (`plane.rs`);
 //! 3. stray points: statistical outlier removal (`strays.rs`);
-//! 4. keep the part: the largest Euclidean cluster (`cluster.rs`);
+//! 4. keep the part: the largest Euclidean cluster, with nearby pieces of it joined
+//!    (`cluster.rs`);
 //! 5. even density: voxel centroids (`density.rs`), farthest point sampling (`sample.rs`);
 //! 6. centre, scale to unit radius, measure (`size.rs`).
 //!
@@ -117,9 +119,13 @@ const FPS_INPUT_PER_POINT: usize = 4;
 const SPACING_SAMPLE: usize = 4096;
 
 impl Recipe {
-    /// Cleans up `cloud_mm` (positions in mm, any frame). Deterministic. Fails only when no
-    /// point survives step 1; every later step keeps at least one point (the table step
-    /// needs points above the table to accept it, clustering keeps the largest cluster).
+    /// Cleans up `cloud_mm` (positions in mm). Deterministic (fixed seeds; the result does
+    /// not depend on the number of threads). Any frame works; in a sensor's own frame (origin
+    /// at the sensor, as raw depth-camera files are) the table test also uses the sensor's
+    /// side of the plane, and a scan in another frame with its origin below the table gets
+    /// a "no table" warning rather than a wrong table. Errors only when no point survives
+    /// step 1; every later step keeps at least one point (the table step needs points above
+    /// the table to accept it, clustering keeps the largest cluster).
     pub fn run(&self, cloud_mm: &PointCloud) -> Result<Prepared, PrepError> {
         let s = self.settings();
         let input = &cloud_mm.positions;
