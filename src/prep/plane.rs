@@ -59,7 +59,7 @@ pub fn ransac_plane(
             .map(|_| points[rng.below(points.len())])
             .collect()
     };
-    let scale = extent(&sample);
+    let scale = extent(sample.iter().copied());
     let mut best: Option<(Plane, usize)> = None;
     let mut needed = iterations as f64;
     let mut done = 0u32;
@@ -102,7 +102,8 @@ pub fn ransac_plane(
     Some((plane, inliers))
 }
 
-fn extent(points: &[[f32; 3]]) -> f32 {
+/// Diagonal (mm) of the bounding box of the points; 0 for none.
+fn extent(points: impl Iterator<Item = [f32; 3]>) -> f32 {
     let mut lo = [f32::INFINITY; 3];
     let mut hi = [f32::NEG_INFINITY; 3];
     for p in points {
@@ -111,7 +112,11 @@ fn extent(points: &[[f32; 3]]) -> f32 {
             hi[a] = hi[a].max(p[a]);
         }
     }
-    norm(sub(hi, lo))
+    if lo[0] > hi[0] {
+        0.0
+    } else {
+        norm(sub(hi, lo))
+    }
 }
 
 /// The plane through the centroid along the two largest principal axes of the points at
@@ -169,6 +174,9 @@ const PLANE_TRIES: usize = 3;
 /// reflections. A plane with more than this share of the scan on its far side is a wall of
 /// the part (a bracket's upright flange) with the table on both sides.
 const MOST_BELOW: f64 = 0.05;
+/// The table's noise band (the threshold) is thin beside the table's size; a plane through
+/// the middle of a sparse model gathers a band as thick as the model.
+const THICKEST_BAND: f32 = 0.05;
 /// A plane with more of its points than this under what stands on it is a face of the part,
 /// not a table (see [`share_under_part`]). A washer's hole or an elbow's inner corner shows
 /// some table under the part's outline, but not this much.
@@ -227,6 +235,20 @@ pub(crate) fn find_table(points: &[[f32; 3]], settings: &TableSearchSettings) ->
                 "the scan's origin (the sensor) is behind the largest plane, away from the rest, \
                  so it is a face of the part seen from the front"
                     .to_string()
+            }
+            _ if threshold_mm
+                > THICKEST_BAND
+                    * extent(
+                        points
+                            .iter()
+                            .copied()
+                            .filter(|&p| plane.signed_distance(p).abs() <= threshold_mm),
+                    ) =>
+            {
+                format!(
+                "the points near the largest plane spread {threshold_mm:.3} mm from it, too far \
+                 for a table of its size, so it is a cut through the part"
+            )
             }
             _ if below_share > MOST_BELOW => format!(
                 "{:.0} % of the scan lies beyond the largest plane on the side away from the \
@@ -374,6 +396,15 @@ fn share_under_part(
         })
         .map(|q| [q[0] as f64, q[1] as f64])
         .collect();
+    if footprint.len() * 10 < above.len().min(FOOTPRINT_SAMPLE) {
+        // Hardly anything above is dense: not a noisy scan of a part on a table but a sparse
+        // cloud (a few points sampled on a model), where every point above counts.
+        footprint = above
+            .iter()
+            .step_by(stride)
+            .map(|q| [q[0] as f64, q[1] as f64])
+            .collect();
+    }
     if footprint.is_empty() {
         return None;
     }
