@@ -226,47 +226,46 @@ pub(crate) fn find_table(points: &[[f32; 3]], settings: &TableSearchSettings) ->
             .filter(|&&p| plane.signed_distance(p) < -threshold_mm)
             .count();
         let below_share = below as f64 / points.len() as f64;
-        let why = match share_under_part(points, &plane, threshold_mm, settings.spacing_mm) {
+        let band_extent = extent(
+            points
+                .iter()
+                .copied()
+                .filter(|&p| plane.signed_distance(p).abs() <= threshold_mm),
+        );
+        let why = if threshold_mm > THICKEST_BAND * band_extent {
+            format!(
+                "the points near the largest plane spread {threshold_mm:.3} mm from it, too far \
+                 for a table {band_extent:.1} mm across, so it is a cut through the part"
+            )
+        } else if plane.offset_mm < -threshold_mm {
             // The origin of a camera-frame scan is the sensor, which looks at the table from
             // the part's side; a face of the part seen from the front has the rest of the
             // part behind it, away from the sensor. (A scan in another frame whose origin
             // lies below the table would lose its table here: the report says so.)
-            _ if plane.offset_mm < -threshold_mm => {
-                "the scan's origin (the sensor) is behind the largest plane, away from the rest, \
-                 so it is a face of the part seen from the front"
-                    .to_string()
-            }
-            _ if threshold_mm
-                > THICKEST_BAND
-                    * extent(
-                        points
-                            .iter()
-                            .copied()
-                            .filter(|&p| plane.signed_distance(p).abs() <= threshold_mm),
-                    ) =>
-            {
-                format!(
-                "the points near the largest plane spread {threshold_mm:.3} mm from it, too far \
-                 for a table of its size, so it is a cut through the part"
-            )
-            }
-            _ if below_share > MOST_BELOW => format!(
+            "the scan's origin (the sensor) is behind the largest plane, away from the rest, \
+             so it is a face of the part seen from the front"
+                .to_string()
+        } else if below_share > MOST_BELOW {
+            format!(
                 "{:.0} % of the scan lies beyond the largest plane on the side away from the \
                  rest, so it is not a table under the part",
                 100.0 * below_share
-            ),
-            Some(share) if share <= MOST_UNDER_PART => {
-                return TableSearch::Found(TableFound {
-                    plane,
-                    threshold_mm,
-                })
+            )
+        } else {
+            match share_under_part(points, &plane, threshold_mm, settings.spacing_mm) {
+                Some(share) if share <= MOST_UNDER_PART => {
+                    return TableSearch::Found(TableFound {
+                        plane,
+                        threshold_mm,
+                    })
+                }
+                Some(share) => format!(
+                    "{:.0} % of the largest plane lies under the rest of the scan, so it is \
+                     taken for a face of the part",
+                    100.0 * share
+                ),
+                None => "nothing stands on the largest plane".to_string(),
             }
-            Some(share) => format!(
-                "{:.0} % of the largest plane lies under the rest of the scan, so it is taken \
-                 for a face of the part",
-                100.0 * share
-            ),
-            None => "nothing stands on the largest plane".to_string(),
         };
         failures.push(why);
         candidates.retain(|&p| plane.signed_distance(p).abs() > threshold_mm);
@@ -596,6 +595,26 @@ mod tests {
         match find_table(&pts, &settings(0.2, 1.0)) {
             TableSearch::NotFound(why) => assert!(why.contains("behind"), "{why}"),
             TableSearch::Found(t) => panic!("took a face for the table: {t:?}"),
+        }
+    }
+
+    #[test]
+    fn a_cut_through_a_thick_cloud_is_not_a_table() {
+        // Points filling a 100 x 100 x 14 mm slab below the origin: the best "plane" is its
+        // middle, with a noise band half as thick as the slab: not a table.
+        let mut rng = Rng::new(9);
+        let pts: Vec<[f32; 3]> = (0..6000)
+            .map(|_| {
+                [
+                    rng.range(-50.0, 50.0) as f32,
+                    rng.range(-50.0, 50.0) as f32,
+                    rng.range(-107.0, -93.0) as f32,
+                ]
+            })
+            .collect();
+        match find_table(&pts, &settings(1.5, 1.5)) {
+            TableSearch::NotFound(why) => assert!(why.contains("cut through"), "{why}"),
+            TableSearch::Found(t) => panic!("{t:?}"),
         }
     }
 
