@@ -1,6 +1,12 @@
 //! Clean-up of a raw 100k-point tabletop scan (simulated depth camera, tests/prep_scene),
 //! on one core and on all cores: the median of several runs of `Recipe::run`, and of its
 //! heaviest pieces alone. `cargo bench --no-default-features --bench prep_clean`.
+//!
+//! Measured on the 2-core development machine while other builds ran on it (load average
+//! 6 to 8), so these are upper bounds: `Recipe::run`, one thread, 37 to 100 ms for the
+//! 97k-point scan with a small part and 120 to 180 ms for the 86k-point scan with a
+//! 14k-point part. Two threads gained nothing measurable there (98 vs 100 ms, 183 vs
+//! 177 ms): only the stray filter runs in parallel; the rest stays sequential.
 
 #[path = "../tests/prep_scene/mod.rs"]
 mod prep_scene;
@@ -11,7 +17,7 @@ use std::time::Instant;
 use partsift::graph::spatial::{knn_graph, SpatialIndex};
 use partsift::prep::{farthest_point_sample, ransac_plane, voxel_centroids, Recipe};
 use partsift::scan::PointCloud;
-use prep_scene::Scene;
+use prep_scene::{Scene, Shape, Truth};
 
 const RUNS: usize = 11;
 
@@ -81,11 +87,35 @@ fn measure(threads: usize, cloud: &PointCloud) {
 }
 
 fn main() {
-    let scan = Scene::default().scan();
-    let cloud = PointCloud::from_positions(scan.points);
     let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
-    measure(1, &cloud);
-    if cores > 1 {
-        measure(cores, &cloud);
+    // A small part on a large table (few part points), then a large part filling a third of
+    // the view (tens of thousands of part points: the heavy case for steps 3 to 5).
+    let scenes = [
+        ("small part", Scene::default()),
+        (
+            "large part",
+            Scene {
+                part: Shape::Box {
+                    at: [0.0, 0.0],
+                    size: [150.0, 110.0, 50.0],
+                    yaw_deg: 20.0,
+                },
+                table_radius: 250.0,
+                ..Scene::default()
+            },
+        ),
+    ];
+    for (name, scene) in scenes {
+        let scan = scene.scan();
+        let part = scan.truth.iter().filter(|&&t| t == Truth::Part).count();
+        println!(
+            "== {name}: {} points, {part} on the part",
+            scan.points.len()
+        );
+        let cloud = PointCloud::from_positions(scan.points);
+        measure(1, &cloud);
+        if cores > 1 {
+            measure(cores, &cloud);
+        }
     }
 }

@@ -378,3 +378,23 @@ fn a_thin_washer_is_not_taken_for_table() {
         out.size
     );
 }
+
+#[test]
+fn prepared_report_and_size_round_trip_through_json() {
+    let scan = Scene {
+        seed: 11,
+        ..Default::default()
+    }
+    .scan();
+    let out = run(&scan);
+    let json = serde_json::to_string(&out).unwrap();
+    let back: Prepared = serde_json::from_str(&json).unwrap();
+    assert_eq!(back, out);
+    let report = serde_json::to_value(&out.report).unwrap();
+    assert_eq!(report["plane"]["status"], "found");
+    assert_eq!(report["counts"]["input"], scan.points.len());
+    let fate = serde_json::to_value(out.fate[0]).unwrap();
+    assert!(fate.is_string(), "{fate}");
+    let f = out.size.log_features();
+    assert!((f[0] - out.size.radius_mm.ln()).abs() < 1e-6);
+}

@@ -66,6 +66,57 @@ pub(crate) fn euclidean_clusters(
     Clusters { labels, sizes }
 }
 
+/// Pieces of one part that a depth step separates (a screw head standing over its shank)
+/// are joined back to the largest cluster: a cluster of at least `min_size` points that comes
+/// within `merge_mm` of the largest is relabelled as the largest, repeatedly, until no more
+/// does. Returns how many clusters were joined.
+pub(crate) fn join_pieces(
+    points: &[[f32; 3]],
+    clusters: &mut Clusters,
+    largest: u32,
+    merge_mm: f32,
+    min_size: usize,
+) -> usize {
+    let mut joined = 0;
+    loop {
+        let members: Vec<[f32; 3]> = points
+            .iter()
+            .zip(&clusters.labels)
+            .filter(|&(_, &l)| l == largest)
+            .map(|(&p, _)| p)
+            .collect();
+        let index = SpatialIndex::new(&members);
+        let mut near = vec![false; clusters.sizes.len()];
+        for (p, &l) in points.iter().zip(&clusters.labels) {
+            let l_us = l as usize;
+            if l == largest || l == UNLABELLED || near[l_us] || clusters.sizes[l_us] < min_size {
+                continue;
+            }
+            if index
+                .knn(*p, 1)
+                .first()
+                .is_some_and(|n| n.dist_sq <= merge_mm * merge_mm)
+            {
+                near[l_us] = true;
+            }
+        }
+        let newly = near.iter().filter(|&&x| x).count();
+        if newly == 0 {
+            return joined;
+        }
+        joined += newly;
+        for l in &mut clusters.labels {
+            if *l != UNLABELLED && near[*l as usize] {
+                *l = largest;
+            }
+        }
+        for (l, _) in near.iter().enumerate().filter(|(_, &x)| x) {
+            clusters.sizes[largest as usize] += clusters.sizes[l];
+            clusters.sizes[l] = 0;
+        }
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -104,6 +155,26 @@ mod tests {
         let c = euclidean_clusters(&index, &points, &active, 1.6);
         assert_eq!(c.sizes, vec![101, 40, 60]);
         assert_eq!(c.labels[200], 0);
+    }
+
+    #[test]
+    fn pieces_near_the_largest_are_joined_and_far_or_tiny_ones_are_not() {
+        // Largest grid at the origin; a 30-point grid 3 mm off it; a 40-point grid 5 mm off
+        // that one (so 3 + 9 + 5 from the first: joined only in a second round); a 2-point
+        // crumb 2 mm off; a 50-point grid far away.
+        let mut points = blob([0.0; 3], 100, 1.0); // x 0..9, y 0..9
+        points.extend(blob([12.0, 0.0, 0.0], 30, 1.0)); // x 12..21
+        points.extend(blob([26.0, 0.0, 0.0], 40, 1.0));
+        points.extend([[0.0, 11.0, 0.0], [1.0, 11.0, 0.0]]);
+        points.extend(blob([100.0, 0.0, 0.0], 50, 1.0));
+        let index = SpatialIndex::new(&points);
+        let mut c = euclidean_clusters(&index, &points, &vec![true; points.len()], 1.2);
+        assert_eq!(c.sizes, vec![100, 30, 40, 2, 50]);
+        assert_eq!(join_pieces(&points, &mut c, 0, 5.5, 10), 2);
+        assert_eq!(c.sizes, vec![170, 0, 0, 2, 50]);
+        assert_eq!(c.labels[140], 0);
+        assert_eq!(c.labels[170], 3);
+        assert_eq!(c.two_largest(), (Some(0), Some(4)));
     }
 
     #[test]

@@ -121,6 +121,44 @@ pub(crate) fn rotate(r: &[[f32; 3]; 3], p: [f32; 3]) -> [f32; 3] {
     [dot(r[0], p), dot(r[1], p), dot(r[2], p)]
 }
 
+/// Convex hull, counter-clockwise, by Andrew's monotone chain (1979); collinear points
+/// dropped. Sorts `points`.
+pub(crate) fn convex_hull(points: &mut [[f64; 2]]) -> Vec<[f64; 2]> {
+    points.sort_unstable_by(|a, b| a[0].total_cmp(&b[0]).then(a[1].total_cmp(&b[1])));
+    let turn = |o: [f64; 2], a: [f64; 2], b: [f64; 2]| {
+        (a[0] - o[0]) * (b[1] - o[1]) - (a[1] - o[1]) * (b[0] - o[0])
+    };
+    let mut hull: Vec<[f64; 2]> = Vec::with_capacity(64);
+    for pass in 0..2 {
+        let floor = hull.len();
+        let mut chain = |p: [f64; 2]| {
+            while hull.len() >= floor + 2
+                && turn(hull[hull.len() - 2], hull[hull.len() - 1], p) <= 0.0
+            {
+                hull.pop();
+            }
+            hull.push(p);
+        };
+        if pass == 0 {
+            points.iter().for_each(|&p| chain(p));
+        } else {
+            points.iter().rev().for_each(|&p| chain(p));
+        }
+        hull.pop(); // the last point of each chain starts the other
+    }
+    hull
+}
+
+/// Whether `p` is inside or on the counter-clockwise convex polygon `hull` (at least 3
+/// corners; fewer contain nothing).
+pub(crate) fn inside_convex(hull: &[[f64; 2]], p: [f64; 2]) -> bool {
+    hull.len() >= 3
+        && (0..hull.len()).all(|i| {
+            let (a, b) = (hull[i], hull[(i + 1) % hull.len()]);
+            (b[0] - a[0]) * (p[1] - a[1]) - (b[1] - a[1]) * (p[0] - a[0]) >= 0.0
+        })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -141,6 +179,24 @@ mod tests {
         }
         assert!((vectors[2][2].abs() - 1.0).abs() < 1e-12);
         assert!((vectors[0][0].abs() - c).abs() < 1e-12, "{vectors:?}");
+    }
+
+    #[test]
+    fn hull_of_a_square_with_inner_points() {
+        let mut pts = vec![
+            [0.0, 0.0],
+            [2.0, 0.0],
+            [1.0, 1.0],
+            [2.0, 2.0],
+            [0.0, 2.0],
+            [1.0, 0.0],
+        ];
+        let hull = convex_hull(&mut pts);
+        assert_eq!(hull, vec![[0.0, 0.0], [2.0, 0.0], [2.0, 2.0], [0.0, 2.0]]);
+        assert!(inside_convex(&hull, [1.0, 1.5]));
+        assert!(inside_convex(&hull, [2.0, 1.0]));
+        assert!(!inside_convex(&hull, [2.1, 1.0]));
+        assert!(!inside_convex(&hull[..2], [1.0, 0.0]));
     }
 
     #[test]

@@ -4,7 +4,8 @@
 use serde::{Deserialize, Serialize};
 
 use super::geom::{
-    centroid_of, cross, dot, norm, rotate, rotation_to_z, scatter_of, sub, symmetric_eigen,
+    centroid_of, convex_hull, cross, dot, inside_convex, norm, rotate, rotation_to_z, scatter_of,
+    sub, symmetric_eigen,
 };
 use crate::graph::spatial::SpatialIndex;
 use crate::rng::Rng;
@@ -58,7 +59,7 @@ pub fn ransac_plane(
             .map(|_| points[rng.below(points.len())])
             .collect()
     };
-    let scale = extent(&sample);
+    let scale = extent(sample.iter().copied());
     let mut best: Option<(Plane, usize)> = None;
     let mut needed = iterations as f64;
     let mut done = 0u32;
@@ -92,18 +93,7 @@ pub fn ransac_plane(
     }
     let (mut plane, _) = best?;
     for _round in 0..2 {
-        let inliers = || {
-            (0..points.len()).filter(|&i| plane.signed_distance(points[i]).abs() <= threshold_mm)
-        };
-        let Some(refined) = least_squares_plane(points, inliers()) else {
-            break;
-        };
-        // Keep the orientation of the RANSAC normal, so refinement never flips it.
-        plane = if dot(refined.normal, plane.normal) < 0.0 {
-            refined.flipped()
-        } else {
-            refined
-        };
+        plane = refit(points, plane, threshold_mm);
     }
     let inliers = points
         .iter()
@@ -112,7 +102,8 @@ pub fn ransac_plane(
     Some((plane, inliers))
 }
 
-fn extent(points: &[[f32; 3]]) -> f32 {
+/// Diagonal (mm) of the bounding box of the points; 0 for none.
+fn extent(points: impl Iterator<Item = [f32; 3]>) -> f32 {
     let mut lo = [f32::INFINITY; 3];
     let mut hi = [f32::NEG_INFINITY; 3];
     for p in points {
@@ -121,7 +112,11 @@ fn extent(points: &[[f32; 3]]) -> f32 {
             hi[a] = hi[a].max(p[a]);
         }
     }
-    norm(sub(hi, lo))
+    if lo[0] > hi[0] {
+        0.0
+    } else {
+        norm(sub(hi, lo))
+    }
 }
 
 /// The plane through the centroid along the two largest principal axes of the points at
@@ -160,10 +155,10 @@ pub(crate) struct TableFound {
 
 /// How to look for the table.
 pub(crate) struct TableSearchSettings {
-    /// RANSAC inlier distance (mm): set by the user, or one spacing by default.
+    /// RANSAC inlier distance (mm): set by the user, or three spacings by default.
     pub ransac_threshold_mm: f32,
     /// Set the final threshold to 3 standard deviations of the range noise on the table,
-    /// at least half the RANSAC distance (off when the user set the distance).
+    /// at least half a spacing (off when the user set the distance).
     pub adapt_to_noise: bool,
     pub min_fraction: f32,
     pub iterations: u32,
@@ -175,19 +170,27 @@ pub(crate) struct TableSearchSettings {
 /// Planes tried before giving up: the table is the largest plane unless a face of the part
 /// is larger, so a second and third try finds it under a big flat part.
 const PLANE_TRIES: usize = 3;
-/// The table must be seen beyond the part's footprint on at least this many of 8 sides ...
-const SIDES_NEEDED: usize = 6;
-/// ... each side holding at least this fraction of the plane's points.
-const SIDE_SHARE: f64 = 0.02;
+/// A table has (nearly) nothing below it: range noise past 3 standard deviations, a few
+/// reflections. A plane with more than this share of the scan on its far side is a wall of
+/// the part (a bracket's upright flange) with the table on both sides.
+const MOST_BELOW: f64 = 0.05;
+/// The table's noise band (the threshold) is thin beside the table's size; a plane through
+/// the middle of a sparse model gathers a band as thick as the model.
+const THICKEST_BAND: f32 = 0.05;
+/// A plane with more of its points than this under what stands on it is a face of the part,
+/// not a table (see [`share_under_part`]). A washer's hole or an elbow's inner corner shows
+/// some table under the part's outline, but not this much.
+const MOST_UNDER_PART: f64 = 0.75;
 
 /// Finds the table: the largest plane (among [`PLANE_TRIES`]) that holds at least
-/// `min_fraction` of the points and surrounds what stands on it (see [`support_sides`]).
-/// A face of the part is rejected by the second test: whatever else of the part there is
-/// lies above the face, not around it.
+/// `min_fraction` of the points, has the scan's origin (the sensor, in a camera-frame scan)
+/// not behind it, has (nearly) nothing beyond it on the side away from the rest, and does
+/// not lie mostly under what stands on it (see [`share_under_part`]). The last three reject
+/// faces of the part.
 pub(crate) fn find_table(points: &[[f32; 3]], settings: &TableSearchSettings) -> TableSearch {
     let min_inliers = (settings.min_fraction as f64 * points.len() as f64).ceil() as usize;
     let mut candidates: Vec<[f32; 3]> = points.to_vec();
-    let mut first_failure: Option<String> = None;
+    let mut failures: Vec<String> = Vec::new();
     for attempt in 0..PLANE_TRIES {
         let seed = settings.seed.wrapping_add(attempt as u64);
         let Some((plane, inliers)) = ransac_plane(
@@ -204,61 +207,136 @@ pub(crate) fn find_table(points: &[[f32; 3]], settings: &TableSearchSettings) ->
                 100.0 * inliers as f64 / points.len() as f64,
                 100.0 * settings.min_fraction
             );
-            first_failure.get_or_insert(why);
+            failures.push(why);
             break;
         }
-        let threshold_mm = if settings.adapt_to_noise {
-            noise_threshold(points, &plane, settings.ransac_threshold_mm)
-        } else {
-            settings.ransac_threshold_mm
-        };
-        let plane = part_side_up(points, plane, threshold_mm);
-        let sides = support_sides(points, &plane, threshold_mm, settings.spacing_mm);
-        if sides >= SIDES_NEEDED {
-            return TableSearch::Found(TableFound {
+        let plane = part_side_up(points, plane, settings.ransac_threshold_mm);
+        let (plane, threshold_mm) = if settings.adapt_to_noise {
+            fit_to_noise(
+                points,
                 plane,
-                threshold_mm,
-            });
-        }
-        let why = format!(
-            "the largest plane is seen around the rest of the scan on {sides} of 8 sides \
-             (a table needs {SIDES_NEEDED}), so it is taken for a face of the part"
+                settings.ransac_threshold_mm,
+                0.5 * settings.spacing_mm,
+            )
+        } else {
+            (plane, settings.ransac_threshold_mm)
+        };
+        let below = points
+            .iter()
+            .filter(|&&p| plane.signed_distance(p) < -threshold_mm)
+            .count();
+        let below_share = below as f64 / points.len() as f64;
+        let band_extent = extent(
+            points
+                .iter()
+                .copied()
+                .filter(|&p| plane.signed_distance(p).abs() <= threshold_mm),
         );
-        first_failure.get_or_insert(why);
+        let why = if threshold_mm > THICKEST_BAND * band_extent {
+            format!(
+                "the points near the largest plane spread {threshold_mm:.3} mm from it, too far \
+                 for a table {band_extent:.1} mm across, so it is a cut through the part"
+            )
+        } else if plane.offset_mm < -threshold_mm {
+            // The origin of a camera-frame scan is the sensor, which looks at the table from
+            // the part's side; a face of the part seen from the front has the rest of the
+            // part behind it, away from the sensor. (A scan in another frame whose origin
+            // lies below the table would lose its table here: the report says so.)
+            "the scan's origin (the sensor) is behind the largest plane, away from the rest, \
+             so it is a face of the part seen from the front"
+                .to_string()
+        } else if below_share > MOST_BELOW {
+            format!(
+                "{:.0} % of the scan lies beyond the largest plane on the side away from the \
+                 rest, so it is not a table under the part",
+                100.0 * below_share
+            )
+        } else {
+            match share_under_part(points, &plane, threshold_mm, settings.spacing_mm) {
+                Some(share) if share <= MOST_UNDER_PART => {
+                    return TableSearch::Found(TableFound {
+                        plane,
+                        threshold_mm,
+                    })
+                }
+                Some(share) => format!(
+                    "{:.0} % of the largest plane lies under the rest of the scan, so it is \
+                     taken for a face of the part",
+                    100.0 * share
+                ),
+                None => "nothing stands on the largest plane".to_string(),
+            }
+        };
+        failures.push(why);
         candidates.retain(|&p| plane.signed_distance(p).abs() > threshold_mm);
     }
-    TableSearch::NotFound(first_failure.unwrap_or_else(|| "no plane through the points".into()))
+    if failures.is_empty() {
+        failures.push("no plane through the points".into());
+    }
+    TableSearch::NotFound(failures.join("; next, "))
 }
 
 /// The table distance fitted to the range noise: 3 robust standard deviations (1.4826 x the
-/// median absolute residual, the normal-consistent MAD: common practice, no source) of the
-/// points near the plane, at least half of `base_mm`; iterated twice so a noise larger than
-/// the first guess widens the window it is measured in.
-fn noise_threshold(points: &[[f32; 3]], plane: &Plane, base_mm: f32) -> f32 {
-    let floor = 0.5 * base_mm;
-    let mut threshold = base_mm;
-    let mut residuals: Vec<f32> = Vec::with_capacity(points.len());
+/// median absolute residual, the normal-consistent MAD: common practice, no source), at
+/// least `floor_mm`. Measured on the points just *below* the plane only: nothing real is
+/// there, while above it the foot of the part would pass for noise. The window starts at
+/// 3 x `start_mm` and is set again from the first estimate, so a noise larger than the first
+/// guess is still measured. `plane`'s normal must point to the part.
+fn noise_threshold(points: &[[f32; 3]], plane: &Plane, start_mm: f32, floor_mm: f32) -> f32 {
+    let mut threshold = start_mm;
+    let mut residuals: Vec<f32> = Vec::with_capacity(points.len() / 2);
     for _round in 0..2 {
         let window = 3.0 * threshold;
         residuals.clear();
         residuals.extend(
             points
                 .iter()
-                .map(|&p| plane.signed_distance(p).abs())
-                .filter(|&d| d <= window),
+                .map(|&p| -plane.signed_distance(p))
+                .filter(|&d| d > 0.0 && d <= window),
         );
         if residuals.is_empty() {
             break;
         }
         let mid = residuals.len() / 2;
         let (_, median, _) = residuals.select_nth_unstable_by(mid, f32::total_cmp);
-        threshold = floor.max(3.0 * 1.4826 * *median);
+        threshold = floor_mm.max(3.0 * 1.4826 * *median);
     }
     threshold
 }
 
+/// Alternately measures the noise ([`noise_threshold`]) and refits the plane to the points
+/// within 2 standard deviations of it, three times: the RANSAC distance may be far from the
+/// noise, and a refit on too wide a band leans on the foot of the part. Keeps the normal's
+/// side. Returns the plane and the final distance.
+fn fit_to_noise(
+    points: &[[f32; 3]],
+    mut plane: Plane,
+    start_mm: f32,
+    floor_mm: f32,
+) -> (Plane, f32) {
+    let mut threshold = start_mm;
+    for _round in 0..3 {
+        threshold = noise_threshold(points, &plane, threshold, floor_mm);
+        // Refit on 2 sigma, not the 3 of the table distance: less of the part's foot.
+        plane = refit(points, plane, threshold * (2.0 / 3.0));
+    }
+    (plane, noise_threshold(points, &plane, threshold, floor_mm))
+}
+
+/// The least-squares plane of the points within `threshold_mm` of `plane`, normal on the
+/// same side; `plane` itself if fewer than 3 points are that close.
+fn refit(points: &[[f32; 3]], plane: Plane, threshold_mm: f32) -> Plane {
+    let inliers =
+        (0..points.len()).filter(|&i| plane.signed_distance(points[i]).abs() <= threshold_mm);
+    match least_squares_plane(points, inliers) {
+        Some(r) if dot(r.normal, plane.normal) < 0.0 => r.flipped(),
+        Some(r) => r,
+        None => plane,
+    }
+}
+
 /// The plane turned so its normal points to the side holding more points beyond the
-/// threshold: the part stands above the table; below it there is only noise.
+/// threshold (the part stands above the table; below it there is only noise).
 fn part_side_up(points: &[[f32; 3]], plane: Plane, threshold_mm: f32) -> Plane {
     let (mut above, mut below) = (0usize, 0usize);
     for &p in points {
@@ -281,15 +359,22 @@ fn part_side_up(points: &[[f32; 3]], plane: Plane, threshold_mm: f32) -> Plane {
 /// is scattered thinly over the whole table and must not count as something standing on it.
 const SOLID_NEIGHBOURS: usize = 4;
 const SOLID_RADIUS_SPACINGS: f32 = 3.0;
+/// Points above the plane tested for the footprint at most (evenly strided).
+const FOOTPRINT_SAMPLE: usize = 4096;
 
-/// On how many of 8 sides (45° sectors around the centre of what stands on the plane) the
-/// plane's points reach beyond what stands on it. A table around a part is seen on all
-/// sides, however narrow the band of table around it; a face of a part is not (the rest of
-/// the part stands on its rim or over it). What stands on the plane: the points above the
-/// threshold with neighbours above it too (see [`SOLID_NEIGHBOURS`]); its reach on each side
-/// is the farthest of them in that sector, so a long thin part (a bolt lying down) is
-/// judged side by side, not by one radius.
-fn support_sides(points: &[[f32; 3]], plane: &Plane, threshold_mm: f32, spacing_mm: f32) -> usize {
+/// The share of the plane's points that lie under what stands on the plane: inside the
+/// convex hull of its footprint (its points projected along the normal). Under a part on a
+/// table the sensor sees no table (only through holes and into concave corners), so a table
+/// has a small share. A face of a part has a large one: the rest of the part stands on the
+/// face's rim or over it (a closed surface, such as a sampled CAD model, covers each face
+/// entirely). What stands on the plane: the points above the threshold with neighbours
+/// above it too (see [`SOLID_NEIGHBOURS`]). `None` if nothing stands on it.
+fn share_under_part(
+    points: &[[f32; 3]],
+    plane: &Plane,
+    threshold_mm: f32,
+    spacing_mm: f32,
+) -> Option<f64> {
     let r = rotation_to_z(plane.normal);
     let above: Vec<[f32; 3]> = points
         .iter()
@@ -298,79 +383,74 @@ fn support_sides(points: &[[f32; 3]], plane: &Plane, threshold_mm: f32, spacing_
         .collect();
     let index = SpatialIndex::new(&above);
     let radius = SOLID_RADIUS_SPACINGS * spacing_mm;
-    let solid: Vec<[f32; 2]> = above
+    // The hull needs the outline, not every point: an even sample keeps it to a few ms.
+    let stride = above.len().div_ceil(FOOTPRINT_SAMPLE).max(1);
+    let mut footprint: Vec<[f64; 2]> = above
         .iter()
+        .step_by(stride)
         .filter(|&&q| {
             let mut near = 0usize;
             index.for_each_within(q, radius, |_, _| near += 1);
             near > SOLID_NEIGHBOURS // the point itself is among them
         })
-        .map(|q| [q[0], q[1]])
+        .map(|q| [q[0] as f64, q[1] as f64])
         .collect();
-    if solid.is_empty() {
-        return 0;
+    if footprint.len() * 10 < above.len().min(FOOTPRINT_SAMPLE) {
+        // Hardly anything above is dense: not a noisy scan of a part on a table but a sparse
+        // cloud (a few points sampled on a model), where every point above counts.
+        footprint = above
+            .iter()
+            .step_by(stride)
+            .map(|q| [q[0] as f64, q[1] as f64])
+            .collect();
     }
-    let n = solid.len() as f64;
-    let centre = [
-        (solid.iter().map(|q| q[0] as f64).sum::<f64>() / n) as f32,
-        (solid.iter().map(|q| q[1] as f64).sum::<f64>() / n) as f32,
-    ];
-    let polar = |x: f32, y: f32| {
-        let (dx, dy) = (x - centre[0], y - centre[1]);
-        let turn = dy.atan2(dx) / std::f32::consts::TAU + 0.5; // 0..=1
-        (((turn * 8.0) as usize).min(7), dx.hypot(dy))
-    };
-    let mut reach = [0f32; 8];
-    for q in &solid {
-        let (side, dist) = polar(q[0], q[1]);
-        reach[side] = reach[side].max(dist);
+    if footprint.is_empty() {
+        return None;
     }
-    let mut per_side = [0usize; 8];
-    let mut on_plane = 0usize;
+    let hull = convex_hull(&mut footprint);
+    let (mut on_plane, mut under) = (0usize, 0usize);
     for &p in points {
-        if plane.signed_distance(p).abs() > threshold_mm {
-            continue;
-        }
-        on_plane += 1;
-        let q = rotate(&r, p);
-        let (side, dist) = polar(q[0], q[1]);
-        if dist > reach[side] {
-            per_side[side] += 1;
+        if plane.signed_distance(p).abs() <= threshold_mm {
+            on_plane += 1;
+            let q = rotate(&r, p);
+            if inside_convex(&hull, [q[0] as f64, q[1] as f64]) {
+                under += 1;
+            }
         }
     }
-    let need = (SIDE_SHARE * on_plane as f64).max(1.0);
-    per_side.iter().filter(|&&n| n as f64 >= need).count()
+    Some(under as f64 / on_plane.max(1) as f64)
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
 
-    /// Points on the known plane z = 0.3 x - 0.2 y + 5 (mm) with Gaussian noise along z,
+    /// Points on the known plane z = 0.3 x - 0.2 y - 5 (mm; the origin, where a sensor would
+    /// be, above it) with Gaussian noise along z,
     /// and `clutter` uniform points in a box above it.
     fn noisy_plane(n: usize, clutter: usize, sigma: f64, rng: &mut Rng) -> Vec<[f32; 3]> {
         let mut pts: Vec<[f32; 3]> = (0..n)
             .map(|_| {
                 let (x, y) = (rng.range(-100.0, 100.0), rng.range(-100.0, 100.0));
-                let z = 0.3 * x - 0.2 * y + 5.0 + sigma * rng.normal();
+                let z = 0.3 * x - 0.2 * y - 5.0 + sigma * rng.normal();
                 [x as f32, y as f32, z as f32]
             })
             .collect();
         pts.extend((0..clutter).map(|_| {
             let (x, y) = (rng.range(-30.0, 30.0), rng.range(-30.0, 30.0));
-            let z = 0.3 * x - 0.2 * y + 5.0 + rng.range(5.0, 60.0);
+            let z = 0.3 * x - 0.2 * y - 5.0 + rng.range(5.0, 60.0);
             [x as f32, y as f32, z as f32]
         }));
         pts
     }
 
-    /// The known plane's unit normal and offset: z - 0.3 x + 0.2 y - 5 = 0, normalised.
+    /// The known plane's unit normal and offset: z - 0.3 x + 0.2 y + 5 = 0, normalised.
     fn known_plane() -> Plane {
         let n = [-0.3f32, 0.2, 1.0];
         let len = norm(n);
         Plane {
             normal: n.map(|c| c / len),
-            offset_mm: -5.0 / len,
+            offset_mm: 5.0 / len,
         }
     }
 
@@ -424,7 +504,7 @@ mod tests {
         let mut rng = Rng::new(4);
         let mut pts = noisy_plane(8000, 3000, 0.5, &mut rng);
         // A few points below the table (reflections) must not turn the plane over.
-        pts.extend((0..50).map(|i| [i as f32, 0.0, -40.0]));
+        pts.extend((0..50).map(|i| [i as f32, 0.0, -50.0]));
         let TableSearch::Found(t) = find_table(&pts, &settings(0.4, 2.0)) else {
             panic!("no table")
         };
@@ -453,6 +533,88 @@ mod tests {
         match find_table(&pts, &settings(0.3, 1.0)) {
             TableSearch::NotFound(why) => assert!(why.contains("face of the part"), "{why}"),
             TableSearch::Found(t) => panic!("took a face for the table: {t:?}"),
+        }
+    }
+
+    #[test]
+    fn a_wall_with_table_on_both_sides_is_not_the_table() {
+        // Sensor at the origin looking down -z: a table at z = -100 and a wall x = 0 rising
+        // from it with more points than the table; the wall has table on both sides.
+        let mut rng = Rng::new(7);
+        let mut pts: Vec<[f32; 3]> = (0..5000)
+            .map(|_| {
+                [
+                    0.05 * rng.normal() as f32,
+                    rng.range(-40.0, 40.0) as f32,
+                    rng.range(-100.0, -40.0) as f32,
+                ]
+            })
+            .collect();
+        pts.extend((0..4000).map(|_| {
+            let x = rng.range(10.0, 80.0) * if rng.uniform() < 0.5 { -1.0 } else { 1.0 };
+            [
+                x as f32,
+                rng.range(-80.0, 80.0) as f32,
+                (-100.0 + 0.05 * rng.normal()) as f32,
+            ]
+        }));
+        let TableSearch::Found(t) = find_table(&pts, &settings(0.2, 1.0)) else {
+            panic!("no table")
+        };
+        assert!(t.plane.normal[2] > 0.999, "{t:?}");
+        assert!((t.plane.offset_mm - 100.0).abs() < 0.1, "{t:?}");
+    }
+
+    #[test]
+    fn a_face_seen_from_the_front_is_not_a_table() {
+        // No table: a box top facing the sensor at the origin, its sides going away from it.
+        let mut rng = Rng::new(8);
+        let mut pts: Vec<[f32; 3]> = (0..4000)
+            .map(|_| {
+                [
+                    rng.range(-30.0, 30.0) as f32,
+                    rng.range(-20.0, 20.0) as f32,
+                    -50.0,
+                ]
+            })
+            .collect();
+        pts.extend((0..300).map(|_| {
+            [
+                30.0,
+                rng.range(-20.0, 20.0) as f32,
+                rng.range(-80.0, -50.0) as f32,
+            ]
+        }));
+        pts.extend((0..300).map(|_| {
+            [
+                rng.range(-30.0, 30.0) as f32,
+                20.0,
+                rng.range(-80.0, -50.0) as f32,
+            ]
+        }));
+        match find_table(&pts, &settings(0.2, 1.0)) {
+            TableSearch::NotFound(why) => assert!(why.contains("behind"), "{why}"),
+            TableSearch::Found(t) => panic!("took a face for the table: {t:?}"),
+        }
+    }
+
+    #[test]
+    fn a_cut_through_a_thick_cloud_is_not_a_table() {
+        // Points filling a 100 x 100 x 14 mm slab below the origin: the best "plane" is its
+        // middle, with a noise band half as thick as the slab: not a table.
+        let mut rng = Rng::new(9);
+        let pts: Vec<[f32; 3]> = (0..6000)
+            .map(|_| {
+                [
+                    rng.range(-50.0, 50.0) as f32,
+                    rng.range(-50.0, 50.0) as f32,
+                    rng.range(-107.0, -93.0) as f32,
+                ]
+            })
+            .collect();
+        match find_table(&pts, &settings(1.5, 1.5)) {
+            TableSearch::NotFound(why) => assert!(why.contains("cut through"), "{why}"),
+            TableSearch::Found(t) => panic!("{t:?}"),
         }
     }
 

@@ -56,9 +56,6 @@ pub enum Warning {
     NoTable { reason: String },
     /// The second-largest object is large: maybe two parts in one scan.
     SecondObject { largest: usize, second: usize },
-    /// The voxel grid would have left fewer points than wanted, so the part's own points
-    /// were sampled.
-    VoxelGridSkipped { voxels: usize, wanted: usize },
     /// The part had fewer points than wanted; the rest repeat them.
     Padded { points: usize, wanted: usize },
 }
@@ -70,10 +67,6 @@ impl fmt::Display for Warning {
             Warning::SecondObject { largest, second } => write!(
                 f,
                 "a second object of {second} points beside the part of {largest}: two parts in one scan?"
-            ),
-            Warning::VoxelGridSkipped { voxels, wanted } => write!(
-                f,
-                "voxel grid would leave {voxels} points (< {wanted}): sampled the part's own points"
             ),
             Warning::Padded { points, wanted } => write!(
                 f,
@@ -95,11 +88,16 @@ pub struct Report {
     /// Points whose mean neighbour distance exceeded this (mm) were strays.
     pub stray_limit_mm: f32,
     pub cluster_radius_mm: f32,
-    /// Clusters found after the strays were removed.
+    /// Clusters after the strays were removed and pieces were joined to the part.
     pub clusters: usize,
+    /// Clusters joined to the part as pieces of it.
+    pub joined_clusters: usize,
     /// Points in the second-largest cluster (0 if none).
     pub second_cluster: usize,
     pub voxel_mm: f32,
+    /// The voxel grid would have left fewer points than wanted, so the part's own points
+    /// were sampled instead.
+    pub voxel_grid_skipped: bool,
     pub size: PartSize,
     pub warnings: Vec<Warning>,
 }
@@ -144,14 +142,24 @@ impl fmt::Display for Report {
             "other objects",
             c.other_clusters,
             format!(
-                "{} clusters at {:.3} mm, second largest {} points",
-                self.clusters, self.cluster_radius_mm, self.second_cluster
+                "{} clusters at {:.3} mm ({} joined to the part), second largest {} points",
+                self.clusters, self.cluster_radius_mm, self.joined_clusters, self.second_cluster
             ),
         )?;
         writeln!(
             f,
-            "  {:<15} {:>9}  part spacing {:.3} mm; {} voxels of {:.3} mm; {} padded",
-            "kept", c.kept, self.part_spacing_mm, c.voxels, self.voxel_mm, c.padded
+            "  {:<15} {:>9}  part spacing {:.3} mm; {} voxels of {:.3} mm{}; {} padded",
+            "kept",
+            c.kept,
+            self.part_spacing_mm,
+            c.voxels,
+            self.voxel_mm,
+            if self.voxel_grid_skipped {
+                " (too few: skipped)"
+            } else {
+                ""
+            },
+            c.padded
         )?;
         let [a, b, h] = self.size.extents_mm;
         writeln!(

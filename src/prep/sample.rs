@@ -21,15 +21,15 @@ pub fn farthest_point_sample(points: &[[f32; 3]], n: usize, start: usize) -> Vec
         // before picking anything twice.
         nearest_pick[next] = -1.0;
         let c = points[next];
-        let mut best = (f32::NEG_INFINITY, 0usize);
-        for (j, (p, d)) in points.iter().zip(nearest_pick.iter_mut()).enumerate() {
+        // Two passes, so the first (branch-free) vectorises.
+        for (p, d) in points.iter().zip(nearest_pick.iter_mut()) {
             let e = [p[0] - c[0], p[1] - c[1], p[2] - c[2]];
-            let dist = e[0] * e[0] + e[1] * e[1] + e[2] * e[2];
-            if dist < *d {
-                *d = dist;
-            }
-            if *d > best.0 {
-                best = (*d, j);
+            *d = d.min(e[0] * e[0] + e[1] * e[1] + e[2] * e[2]);
+        }
+        let mut best = (f32::NEG_INFINITY, 0usize);
+        for (j, &d) in nearest_pick.iter().enumerate() {
+            if d > best.0 {
+                best = (d, j);
             }
         }
         next = best.1;

@@ -3,6 +3,8 @@
 
 use serde::{Deserialize, Serialize};
 
+use super::geom::convex_hull;
+
 /// The true size of a prepared part, in mm.
 #[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
 pub struct PartSize {
@@ -92,34 +94,6 @@ fn smallest_rectangle(points: &mut [[f64; 2]]) -> [f64; 2] {
     } else {
         [0.0, 0.0]
     }
-}
-
-/// Convex hull, counter-clockwise, by Andrew's monotone chain (1979); collinear points
-/// dropped. Sorts `points`.
-fn convex_hull(points: &mut [[f64; 2]]) -> Vec<[f64; 2]> {
-    points.sort_unstable_by(|a, b| a[0].total_cmp(&b[0]).then(a[1].total_cmp(&b[1])));
-    let turn = |o: [f64; 2], a: [f64; 2], b: [f64; 2]| {
-        (a[0] - o[0]) * (b[1] - o[1]) - (a[1] - o[1]) * (b[0] - o[0])
-    };
-    let mut hull: Vec<[f64; 2]> = Vec::with_capacity(64);
-    for pass in 0..2 {
-        let floor = hull.len();
-        let mut chain = |p: [f64; 2]| {
-            while hull.len() >= floor + 2
-                && turn(hull[hull.len() - 2], hull[hull.len() - 1], p) <= 0.0
-            {
-                hull.pop();
-            }
-            hull.push(p);
-        };
-        if pass == 0 {
-            points.iter().for_each(|&p| chain(p));
-        } else {
-            points.iter().rev().for_each(|&p| chain(p));
-        }
-        hull.pop(); // the last point of each chain starts the other
-    }
-    hull
 }
 
 #[cfg(test)]

@@ -21,7 +21,11 @@ pub(crate) struct Strays {
 /// Marks the strays of `points` (mm), with `index` built over the same points. The point
 /// itself is not counted among its `k` neighbours (PCL's convention). Exact duplicates count
 /// as neighbours at distance 0. Clouds with at most `k` points have no strays: there is no
-/// neighbourhood to compare with. In parallel over points.
+/// neighbourhood to compare with. In parallel over points (each query independent, results
+/// collected in order): the one clean-up step where rayon is used. The others stay
+/// sequential: clustering is a flood fill, farthest point sampling needs the previous pick
+/// before the next pass (a parallel pass per pick over a few thousand points costs more in
+/// hand-offs than it saves), and the voxel sort and table passes take a few ms.
 pub(crate) fn find_strays(
     index: &SpatialIndex,
     points: &[[f32; 3]],
