@@ -1,0 +1,213 @@
+//! The Map tab: every scan of the parts bin as a dot in 2D (the model's pooled features
+//! brought down to two axes), coloured by its label. A dot whose nearest neighbours carry
+//! another label is ringed: a likely wrong label. Clicking a dot opens its scan in Inspect.
+
+use eframe::egui;
+use std::path::PathBuf;
+use std::sync::Arc;
+
+use egui_plot::{HoverPosition, Legend, MarkerShape, Plot, PlotPoint, Points};
+
+use super::backend;
+use super::inspect::file_name;
+use super::worker::{poll_slot, JobEvent, Reporter, Worker};
+use super::{palette, Action, Shared};
+
+/// One scan on the map.
+#[derive(Clone, Debug, PartialEq)]
+pub(crate) struct MapDot {
+    pub(crate) path: PathBuf,
+    /// Index into [`MapData::part_types`] of its label.
+    pub(crate) label: usize,
+    /// Position on the map's two axes (unitless).
+    pub(crate) xy: [f32; 2],
+    /// Its nearest neighbours mostly carry another label.
+    pub(crate) suspicious: bool,
+}
+
+/// The whole map.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub(crate) struct MapData {
+    pub(crate) part_types: Vec<String>,
+    pub(crate) dots: Vec<MapDot>,
+}
+
+/// The series of ringed dots.
+const RINGED: &str = "likely mislabelled";
+/// A click lands on a dot when it is within this many screen points of it.
+const CLICK_RADIUS: f32 = 8.0;
+
+#[derive(Default)]
+pub(crate) struct MapTab {
+    data: Option<MapData>,
+    worker: Option<Worker<JobEvent<MapData>>>,
+    fraction: f32,
+    error: Option<String>,
+}
+
+impl MapTab {
+    pub(crate) fn busy(&self) -> Option<String> {
+        self.worker
+            .as_ref()
+            .map(|_| format!("making the map ({:.0} %)", 100.0 * self.fraction))
+    }
+
+    pub(crate) fn poll(&mut self) {
+        let Self {
+            data,
+            worker,
+            fraction,
+            error,
+        } = self;
+        let crashed = poll_slot(worker, |event| match event {
+            JobEvent::Fraction(f) => *fraction = f,
+            JobEvent::Done(Ok(d)) => *data = Some(d),
+            JobEvent::Done(Err(e)) => *error = Some(e.to_string()),
+        });
+        if let Some(e) = crashed {
+            *error = Some(e.to_string());
+        }
+    }
+
+    pub(crate) fn ui(&mut self, ui: &mut egui::Ui, shared: &mut Shared) {
+        let Self {
+            data,
+            worker,
+            fraction,
+            error,
+        } = self;
+        ui.horizontal(|ui| {
+            ui.heading("Map");
+            let can = worker.is_none() && shared.bin.is_some() && shared.model.is_some();
+            let label = if data.is_some() {
+                "Make the map again"
+            } else {
+                "Make the map"
+            };
+            if ui
+                .add_enabled(can, egui::Button::new(label))
+                .on_disabled_hover_text("Needs a parts bin and a model.")
+                .clicked()
+            {
+                if let (Some(bin), Some(model)) = (shared.bin, shared.model) {
+                    let bin = bin.to_path_buf();
+                    let model = Arc::clone(model);
+                    let job = move |r: &Reporter<JobEvent<MapData>>| {
+                        let result = backend::map_bin(&bin, &model, r);
+                        r.send(JobEvent::Done(result));
+                    };
+                    *error = None;
+                    match Worker::spawn(ui.ctx(), "map", job) {
+                        Ok(w) => *worker = Some(w),
+                        Err(e) => *error = Some(format!("could not start: {e}")),
+                    }
+                }
+            }
+            if worker.is_some() {
+                ui.add(
+                    egui::ProgressBar::new(*fraction)
+                        .show_percentage()
+                        .desired_width(200.0),
+                );
+            }
+        });
+        ui.weak(
+            "Each dot is a scan of the parts bin, placed by what the model learned of it. \
+             Ringed dots sit among scans of another type: their label may be wrong. Click a dot to inspect its scan.",
+        );
+        if let Some(e) = error {
+            ui.colored_label(palette::error_colour(), e.as_str());
+        }
+        let Some(data) = data else {
+            return;
+        };
+        if let Some(path) = scatter(ui, data) {
+            shared.actions.push(Action::OpenScan(path));
+        }
+    }
+}
+
+/// The scatter plot; returns the scan of a clicked dot.
+fn scatter(ui: &mut egui::Ui, data: &MapData) -> Option<PathBuf> {
+    // Which dot each plotted point is: per type series, then the ringed series.
+    let mut series: Vec<Vec<usize>> = vec![Vec::new(); data.part_types.len()];
+    for (i, d) in data.dots.iter().enumerate() {
+        if let Some(s) = series.get_mut(d.label) {
+            s.push(i);
+        }
+    }
+    let ringed: Vec<usize> = (0..data.dots.len())
+        .filter(|&i| data.dots[i].suspicious)
+        .collect();
+    let xy = |i: &usize| {
+        [
+            f64::from(data.dots[*i].xy[0]),
+            f64::from(data.dots[*i].xy[1]),
+        ]
+    };
+    let response = Plot::new("feature map")
+        .legend(Legend::default())
+        .data_aspect(1.0)
+        .show_axes(false)
+        .label_formatter(|pos| match pos {
+            HoverPosition::NearDataPoint {
+                plot_name, index, ..
+            } => {
+                let list = if *plot_name == RINGED {
+                    &ringed
+                } else {
+                    series.get(data.part_types.iter().position(|n| n == plot_name)?)?
+                };
+                let dot = &data.dots[*list.get(*index)?];
+                let label = data.part_types.get(dot.label).map_or("?", String::as_str);
+                Some(format!("{}\nlabel: {label}", file_name(&dot.path)))
+            }
+            HoverPosition::Elsewhere { .. } => None,
+        })
+        .show(ui, |plot| {
+            for (t, name) in data.part_types.iter().enumerate() {
+                let points: Vec<[f64; 2]> = series[t].iter().map(xy).collect();
+                plot.points(
+                    Points::new(name.as_str(), points)
+                        .radius(4.0)
+                        .color(palette::type_colour(t))
+                        .shape(MarkerShape::Circle)
+                        .filled(true),
+                );
+            }
+            if !ringed.is_empty() {
+                plot.points(
+                    Points::new(RINGED, ringed.iter().map(xy).collect::<Vec<_>>())
+                        .radius(8.0)
+                        .color(palette::review_colour())
+                        .shape(MarkerShape::Circle)
+                        .filled(false),
+                );
+            }
+        });
+    if !response.response.clicked() {
+        return None;
+    }
+    let pointer = response.response.interact_pointer_pos()?;
+    let nearest = data
+        .dots
+        .iter()
+        .map(|d| {
+            let at = response
+                .transform
+                .position_from_point(&PlotPoint::new(d.xy[0], d.xy[1]));
+            (d, at.distance(pointer))
+        })
+        .min_by(|a, b| a.1.total_cmp(&b.1))?;
+    (nearest.1 <= CLICK_RADIUS).then(|| nearest.0.path.clone())
+}
+
+#[cfg(test)]
+impl MapTab {
+    pub(crate) fn set_data(&mut self, data: MapData) {
+        self.data = Some(data);
+    }
+    pub(crate) fn has_data(&self) -> bool {
+        self.data.is_some()
+    }
+}
