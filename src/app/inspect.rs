@@ -445,9 +445,9 @@ fn score_chart(ui: &mut egui::Ui, scores: &[(String, f32)]) {
             Bar::new((top.len() - 1 - i) as f64, 100.0 * f64::from(*score))
                 .name(name)
                 .fill(if i == 0 {
-                    palette::type_colour(0)
+                    palette::accent_colour()
                 } else {
-                    palette::type_colour(0).gamma_multiply(0.45)
+                    palette::accent_colour().gamma_multiply(0.45)
                 })
                 .width(0.7)
         })

@@ -145,8 +145,9 @@ fn scatter(ui: &mut egui::Ui, data: &MapData) -> Option<PathBuf> {
             f64::from(data.dots[*i].xy[1]),
         ]
     };
+    let ring = ui.visuals().strong_text_color();
     let response = Plot::new("feature map")
-        .legend(Legend::default())
+        .legend(Legend::default().follow_insertion_order(true))
         .data_aspect(1.0)
         .show_axes(false)
         .label_formatter(|pos| match pos {
@@ -170,7 +171,7 @@ fn scatter(ui: &mut egui::Ui, data: &MapData) -> Option<PathBuf> {
                 plot.points(
                     Points::new(name.as_str(), points)
                         .radius(4.0)
-                        .color(palette::type_colour(t))
+                        .color(palette::type_colour(t, data.part_types.len()))
                         .shape(MarkerShape::Circle)
                         .filled(true),
                 );
@@ -179,7 +180,7 @@ fn scatter(ui: &mut egui::Ui, data: &MapData) -> Option<PathBuf> {
                 plot.points(
                     Points::new(RINGED, ringed.iter().map(xy).collect::<Vec<_>>())
                         .radius(8.0)
-                        .color(palette::review_colour())
+                        .color(ring)
                         .shape(MarkerShape::Circle)
                         .filled(false),
                 );

@@ -46,6 +46,25 @@ pub struct StartOptions {
 /// Where eframe keeps the app's remembered choices (and the first-start model).
 const APP_ID: &str = "partsift";
 
+/// The keyboard and mouse controls, as About lists them.
+const CONTROLS: &[(&str, &str)] = &[
+    ("Ctrl+O", "open a scan"),
+    ("N / P", "next / previous scan"),
+    (
+        "Right / Left",
+        "the same, with the pointer over the 3D view",
+    ),
+    ("R", "reset the 3D view"),
+    ("drag", "orbit the 3D view"),
+    ("right- or middle-drag, Shift+drag", "pan"),
+    ("wheel", "zoom toward the pointer"),
+    ("double-click", "reset the 3D view"),
+    (
+        "drop a file",
+        "inspect it; a folder becomes the parts bin (on Sort: the folder to sort)",
+    ),
+];
+
 /// Shown in About and beside every `review` verdict.
 pub(crate) const CAUTION: &str = "partsift's verdict supports, and does not replace, the plant's \
 inspection procedures, gauges and sign-off. Uncertain (review) verdicts go to a person.";
@@ -560,6 +579,8 @@ impl App {
             .collapsible(false)
             .resizable(false)
             .default_width(460.0)
+            .pivot(egui::Align2::CENTER_CENTER)
+            .default_pos(ctx.content_rect().center())
             .show(ctx, |ui| {
                 ui.label(
                     "partsift sorts scanned parts by type. It learns the types from a parts bin \
@@ -569,10 +590,17 @@ impl App {
                 ui.add_space(6.0);
                 caution(ui);
                 ui.add_space(6.0);
-                ui.strong("Keys");
-                ui.label("Ctrl+O  open a scan\nN / P  next / previous scan (arrow keys over the 3D view)\nR  reset the 3D view");
-                ui.strong("Mouse on the 3D view");
-                ui.label("drag  orbit\nright-drag, middle-drag or Shift+drag  pan\nwheel  zoom toward the pointer\ndouble-click  reset");
+                ui.strong("Keys and mouse");
+                egui::Grid::new("about controls")
+                    .num_columns(2)
+                    .striped(true)
+                    .show(ui, |ui| {
+                        for (what, does) in CONTROLS {
+                            ui.label(egui::RichText::new(*what).monospace());
+                            ui.label(*does);
+                            ui.end_row();
+                        }
+                    });
                 ui.add_space(4.0);
                 ui.weak(format!("version {}", env!("CARGO_PKG_VERSION")));
             });

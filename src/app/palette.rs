@@ -30,16 +30,24 @@ pub(crate) fn oklch(l: f32, c: f32, hue_degrees: f32, alpha: f32) -> Color32 {
     Color32::from_rgba_unmultiplied(encode(r), encode(g), encode(bl), (alpha * 255.0) as u8)
 }
 
-/// A distinct colour for part type number `index`: hues a golden angle apart (so neighbours in
-/// the list never look alike), at one lightness and chroma so no type stands out.
-pub(crate) fn type_colour(index: usize) -> Color32 {
-    const GOLDEN_ANGLE_DEGREES: f32 = 137.507_77;
-    oklch(
-        0.74,
-        0.12,
-        (20.0 + index as f32 * GOLDEN_ANGLE_DEGREES) % 360.0,
-        1.0,
-    )
+/// A distinct colour for item `index` of `count` (part types on the map, curves on a plot):
+/// hues evenly around the circle, at one chroma so none stands out. Past eight, hues would
+/// crowd, so every other item is also lighter.
+pub(crate) fn type_colour(index: usize, count: usize) -> Color32 {
+    let count = count.max(1);
+    let hues = count.min(8).max(count.div_ceil(2));
+    let hue = 25.0 + 360.0 * (index % hues) as f32 / hues as f32;
+    let lightness = if (index / hues).is_multiple_of(2) {
+        0.72
+    } else {
+        0.86
+    };
+    oklch(lightness, 0.12, hue, 1.0)
+}
+
+/// The accent of charts that show one quantity.
+pub(crate) fn accent_colour() -> Color32 {
+    oklch(0.72, 0.11, 230.0, 1.0)
 }
 
 /// A `sure` verdict: a calm green.
@@ -74,10 +82,12 @@ mod tests {
 
     #[test]
     fn type_colours_differ() {
-        let colours: Vec<Color32> = (0..12).map(type_colour).collect();
-        for (i, a) in colours.iter().enumerate() {
-            for b in &colours[i + 1..] {
-                assert_ne!(a, b);
+        for count in [1, 3, 6, 8, 12, 20] {
+            let colours: Vec<Color32> = (0..count).map(|i| type_colour(i, count)).collect();
+            for (i, a) in colours.iter().enumerate() {
+                for b in &colours[i + 1..] {
+                    assert_ne!(a, b, "{count} types");
+                }
             }
         }
     }

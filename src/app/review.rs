@@ -560,7 +560,7 @@ fn matrix(
         .show(ui, |ui| {
             ui.weak("true \\ predicted");
             for name in &evaluation.part_types {
-                ui.add(egui::Label::new(egui::RichText::new(name).small().strong()).truncate());
+                ui.add(egui::Label::new(egui::RichText::new(name).strong()).truncate());
             }
             ui.end_row();
             for t in 0..n {

@@ -270,6 +270,26 @@ impl SortTab {
                     .text(format!("{} of {} scans", self.rows.len(), self.found))
                     .animate(running),
             );
+            let count = |status: Option<Status>| {
+                self.rows
+                    .iter()
+                    .filter(|r| r.outcome.as_ref().ok().map(|v| v.status) == status)
+                    .count()
+            };
+            ui.horizontal(|ui| {
+                ui.colored_label(
+                    palette::sure_colour(),
+                    format!("{} sure", count(Some(Status::Sure))),
+                );
+                ui.colored_label(
+                    palette::review_colour(),
+                    format!("{} review", count(Some(Status::Review))),
+                );
+                ui.colored_label(
+                    palette::error_colour(),
+                    format!("{} unreadable", count(None)),
+                );
+            });
         }
         ui.horizontal(|ui| {
             ui.checkbox(&mut self.only_needing_a_person, "Only review and unreadable");
@@ -362,12 +382,13 @@ impl SortTab {
     }
 
     fn table(&mut self, ui: &mut egui::Ui) {
+        let row_height = ui.text_style_height(&egui::TextStyle::Body) + 4.0;
         ui.horizontal(|ui| {
             for c in Column::ALL {
-                let header = egui::Button::new(egui::RichText::new(c.title()).strong())
-                    .frame(false)
-                    .min_size(egui::vec2(c.width(), 0.0));
-                let response = ui.add(header).on_hover_text("Click to sort by this column");
+                let header =
+                    egui::Button::new(egui::RichText::new(c.title()).strong()).frame(false);
+                let response = in_column(ui, c, row_height, |ui| ui.add(header))
+                    .on_hover_text("Click to sort by this column");
                 if self.order_by == c {
                     sort_mark(ui, response.rect, self.ascending);
                 }
@@ -390,7 +411,6 @@ impl SortTab {
             });
             return;
         }
-        let row_height = ui.text_style_height(&egui::TextStyle::Body) + 4.0;
         egui::ScrollArea::vertical().auto_shrink(false).show_rows(
             ui,
             row_height,
@@ -400,10 +420,9 @@ impl SortTab {
                     let row = &self.rows[i];
                     ui.horizontal(|ui| {
                         let cell = |ui: &mut egui::Ui, c: Column, text: egui::RichText| {
-                            ui.add_sized(
-                                [c.width(), row_height],
-                                egui::Label::new(text).truncate(),
-                            );
+                            in_column(ui, c, row_height, |ui| {
+                                ui.add(egui::Label::new(text).truncate())
+                            });
                         };
                         cell(ui, Column::File, egui::RichText::new(file_name(&row.path)));
                         match &row.outcome {
@@ -441,9 +460,28 @@ impl SortTab {
     }
 }
 
-/// A small triangle at the right end of a column header: point up = ascending.
+/// `add` in a cell of column `c`'s width, left-aligned (numbers right-aligned).
+fn in_column(
+    ui: &mut egui::Ui,
+    c: Column,
+    height: f32,
+    add: impl FnOnce(&mut egui::Ui) -> egui::Response,
+) -> egui::Response {
+    let layout = if c == Column::Confidence {
+        egui::Layout::right_to_left(egui::Align::Center)
+    } else {
+        egui::Layout::left_to_right(egui::Align::Center)
+    };
+    ui.allocate_ui_with_layout(egui::vec2(c.width(), height), layout, |ui| {
+        ui.set_min_width(c.width());
+        add(ui)
+    })
+    .inner
+}
+
+/// A small triangle just after a column header's text: point up = ascending.
 fn sort_mark(ui: &egui::Ui, header: egui::Rect, ascending: bool) {
-    let c = egui::pos2(header.right() - 10.0, header.center().y);
+    let c = egui::pos2(header.right() + 8.0, header.center().y);
     let (tip, base) = if ascending { (-4.0, 3.0) } else { (4.0, -3.0) };
     let points = vec![
         c + egui::vec2(0.0, tip),

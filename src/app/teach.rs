@@ -283,7 +283,14 @@ impl TeachTab {
         let mut save = None;
         egui::CentralPanel::default().show(ui, |ui| {
             ui.heading("Teach");
-            ui.add_enabled_ui(!running, |ui| settings_grid(ui, settings));
+            ui.horizontal_top(|ui| {
+                ui.vertical(|ui| {
+                    ui.add_enabled_ui(!running, |ui| settings_grid(ui, settings));
+                });
+                // Not a separator: in a row it would take the whole height of the panel.
+                ui.add_space(40.0);
+                ui.vertical(|ui| save = model_row(ui, shared));
+            });
             ui.add_space(6.0);
             ui.horizontal(|ui| {
                 let can_start = !running && shared.bin.is_some();
@@ -320,8 +327,6 @@ impl TeachTab {
             } else {
                 ui.weak("No run yet. Start teaching to see progress and curves here.");
             }
-            ui.separator();
-            save = model_row(ui, shared);
         });
         if let Some((model, path)) = save {
             self.saving = spawn_save(ui.ctx(), model, path, &mut self.error);
@@ -520,7 +525,7 @@ fn curves(ui: &mut egui::Ui, epochs: &[EpochStats]) {
         .x_axis_label("epoch")
         .allow_scroll(false)
         .show(ui, |plot| {
-            plot.line(Line::new("loss", series(|e| e.loss)).color(palette::type_colour(0)));
+            plot.line(Line::new("loss", series(|e| e.loss)).color(palette::accent_colour()));
         });
     ui.strong("Accuracy");
     Plot::new("teach accuracy")
@@ -539,11 +544,11 @@ fn curves(ui: &mut egui::Ui, epochs: &[EpochStats]) {
             };
             plot.line(
                 Line::new("train", pct(series(|e| e.train_accuracy)))
-                    .color(palette::type_colour(1)),
+                    .color(palette::type_colour(0, 2)),
             );
             plot.line(
                 Line::new("holdout", pct(series(|e| e.holdout_accuracy)))
-                    .color(palette::type_colour(2)),
+                    .color(palette::type_colour(1, 2)),
             );
         });
 }
@@ -551,7 +556,7 @@ fn curves(ui: &mut egui::Ui, epochs: &[EpochStats]) {
 /// The model in use, and Save / Open. Returns where the user chose to save it.
 fn model_row(ui: &mut egui::Ui, shared: &mut Shared) -> Option<(Arc<LoadedModel>, PathBuf)> {
     let mut save = None;
-    ui.horizontal(|ui| match shared.model {
+    match shared.model {
         Some(m) => {
             ui.strong(format!("Model: {}", m.name));
             ui.weak(m.summary.join(" · "));
@@ -560,7 +565,7 @@ fn model_row(ui: &mut egui::Ui, shared: &mut Shared) -> Option<(Arc<LoadedModel>
         None => {
             ui.weak("No model yet.");
         }
-    });
+    }
     ui.horizontal(|ui| {
         if ui
             .add_enabled(shared.model.is_some(), egui::Button::new("Save model…"))

@@ -408,7 +408,7 @@ struct ShotRunner {
 }
 
 /// Tab, file name, colouring of the 3D view.
-const SHOTS: [(Tab, &str, view3d::ColourBy); 7] = [
+const SHOTS: [(Tab, &str, view3d::ColourBy); 9] = [
     (Tab::Inspect, "inspect", view3d::ColourBy::Height),
     (Tab::Inspect, "inspect-removed", view3d::ColourBy::Removed),
     (
@@ -420,6 +420,8 @@ const SHOTS: [(Tab, &str, view3d::ColourBy); 7] = [
     (Tab::Review, "review", view3d::ColourBy::Height),
     (Tab::Sort, "sort", view3d::ColourBy::Height),
     (Tab::Map, "map", view3d::ColourBy::Height),
+    (Tab::Inspect, "about", view3d::ColourBy::Height),
+    (Tab::Review, "review-light", view3d::ColourBy::Height),
 ];
 
 impl ShotRunner {
@@ -446,7 +448,7 @@ impl ShotRunner {
             for epoch in 1..=40u32 {
                 let e = epoch as f32;
                 r.send(TeachEvent::Progress {
-                    fraction: e / 40.0 * 0.45,
+                    fraction: e / 40.0,
                     doing: format!("epoch {} of 40", epoch.min(18)),
                 });
                 if epoch <= 18 {
@@ -520,13 +522,21 @@ impl ShotRunner {
 }
 
 impl eframe::App for ShotRunner {
-    fn ui(&mut self, ui: &mut egui::Ui, _frame: &mut eframe::Frame) {
+    fn ui(&mut self, ui: &mut egui::Ui, frame: &mut eframe::Frame) {
+        if self.shot == 0 && self.frames == 0 {
+            let adapter = frame.wgpu_render_state().map(|s| s.adapter.get_info());
+            eprintln!("renderer: {adapter:?}");
+        }
         let Some(&(tab, name, colour)) = SHOTS.get(self.shot) else {
             ui.ctx().send_viewport_cmd(egui::ViewportCommand::Close);
             return;
         };
         self.app.tab = tab;
         self.app.view.colour = colour;
+        self.app.session.about_open = name == "about";
+        if name.ends_with("light") {
+            ui.ctx().set_theme(egui::Theme::Light);
+        }
         self.app.show(ui);
         self.frames += 1;
         if self.frames == 40 {

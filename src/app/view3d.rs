@@ -78,7 +78,17 @@ pub(crate) struct Camera {
     pitch: f32,
     /// Radius of the framed bounds: sets the zoom limits.
     scene_radius: f32,
-    framed: bool,
+    fit: Fit,
+}
+
+/// Whether the camera still has to frame what it is drawn with.
+#[derive(Clone, Copy, Debug, PartialEq)]
+enum Fit {
+    Done,
+    /// Frame the next cloud, keeping the direction the user chose.
+    KeepDirection,
+    /// Frame the next cloud from the home direction.
+    Home,
 }
 
 impl Default for Camera {
@@ -89,7 +99,7 @@ impl Default for Camera {
             yaw: HOME_YAW,
             pitch: HOME_PITCH,
             scene_radius: 1.0,
-            framed: false,
+            fit: Fit::Home,
         }
     }
 }
@@ -97,7 +107,25 @@ impl Default for Camera {
 impl Camera {
     /// Forgets the framing: the next draw frames its cloud from the home direction.
     pub(crate) fn reset(&mut self) {
-        self.framed = false;
+        self.fit = Fit::Home;
+    }
+
+    /// The next draw frames its cloud, looking from where the camera looks now.
+    fn refit(&mut self) {
+        if self.fit == Fit::Done {
+            self.fit = Fit::KeepDirection;
+        }
+    }
+
+    /// Frames `bounds` as [`Camera::frame`] does, keeping the direction unless a reset asked
+    /// for the home direction.
+    fn fit_to(&mut self, bounds: [[f32; 3]; 2], aspect: f32) {
+        let (yaw, pitch) = (self.yaw, self.pitch);
+        let keep = self.fit == Fit::KeepDirection;
+        self.frame(bounds, aspect);
+        if keep {
+            (self.yaw, self.pitch) = (yaw, pitch);
+        }
     }
 
     /// Looks at the centre of `bounds` (mm, `[min, max]`) from the home direction, just far
@@ -114,7 +142,7 @@ impl Camera {
             yaw: HOME_YAW,
             pitch: HOME_PITCH,
             scene_radius: radius,
-            framed: true,
+            fit: Fit::Done,
         };
     }
 
@@ -684,6 +712,7 @@ struct MeshKey {
 /// so several views can share them.
 #[derive(Default)]
 pub(crate) struct PointView {
+    last_cloud: Option<u64>,
     mesh: Arc<Mesh>,
     key: Option<MeshKey>,
     colours: Vec<Color32>,
@@ -719,9 +748,15 @@ impl PointView {
             return response;
         };
 
+        // A different cloud in this view (another scan, or the network's points instead of
+        // the whole scan) is framed anew.
+        if self.last_cloud != Some(cloud.id) {
+            camera.refit();
+            self.last_cloud = Some(cloud.id);
+        }
         self.handle_input(ui, &response, camera, rect);
-        if !camera.framed {
-            camera.frame(bounds, rect.aspect_ratio());
+        if camera.fit != Fit::Done {
+            camera.fit_to(bounds, rect.aspect_ratio());
         }
 
         let colour = if cloud.has(settings.colour) {
@@ -1013,6 +1048,20 @@ pub(crate) mod tests {
             assert!((after - before).abs() < 1e-3 * before);
         }
         assert!(camera.pitch.abs() <= MAX_PITCH, "pitch is clamped");
+    }
+
+    #[test]
+    fn a_new_cloud_is_framed_from_the_direction_the_user_chose() {
+        let mut camera = framed_camera();
+        camera.orbit(Vec2::new(120.0, -40.0));
+        let (yaw, pitch) = (camera.yaw, camera.pitch);
+        camera.refit();
+        camera.fit_to([[0.0; 3], [2.0, 2.0, 2.0]], 1.0);
+        assert_eq!((camera.yaw, camera.pitch), (yaw, pitch));
+        assert_eq!(camera.target, [1.0, 1.0, 1.0]);
+        camera.reset();
+        camera.fit_to([[0.0; 3], [2.0, 2.0, 2.0]], 1.0);
+        assert_eq!((camera.yaw, camera.pitch), (HOME_YAW, HOME_PITCH));
     }
 
     #[test]
