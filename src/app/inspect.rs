@@ -307,7 +307,11 @@ fn scan_list(
     open: &mut Option<Option<PathBuf>>,
 ) {
     let Some(survey) = shared.survey else {
-        ui.weak("No parts bin yet: choose one on the Teach tab, or drop a folder on the window.");
+        ui.weak(if shared.bin.is_some() {
+            "The parts bin is being read, or could not be read (see Messages)."
+        } else {
+            "No parts bin yet: choose one on the Teach tab, or drop a folder on the window."
+        });
         return;
     };
     ui.strong(format!("Parts bin: {} scans", survey.scan_count()));
@@ -359,7 +363,7 @@ fn verdict_panel(
         }
         (None, Stage::CleaningUp | Stage::Judging) => {
             ui.horizontal(|ui| {
-                ui.spinner();
+                super::busy_mark(ui);
                 ui.label(if stage == Stage::CleaningUp {
                     "Reading and cleaning up…"
                 } else {

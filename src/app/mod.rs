@@ -329,7 +329,7 @@ impl App {
             r.send((path, result));
         }) {
             Ok(w) => self.session.model_opening = Some(w),
-            Err(e) => self.notify(Notice::error(format!("could not open the model: {e}"))),
+            Err(e) => self.notify(Notice::error(format!("Could not open the model: {e}"))),
         }
     }
 
@@ -357,7 +357,7 @@ impl App {
                 )));
                 *survey = Some(s);
             }
-            Err(e) => notices.push(Notice::error(format!("parts bin: {e}"))),
+            Err(e) => notices.push(Notice::error(format!("Could not read the parts bin: {e}"))),
         });
         notices.extend(crashed.map(Notice::error));
         let last_model = &mut self.last_model;
@@ -367,7 +367,7 @@ impl App {
                 *model = Some(Arc::new(m));
                 *last_model = Some(path);
             }
-            Err(e) => notices.push(Notice::error(format!("model {}: {e}", path.display()))),
+            Err(e) => notices.push(Notice::error(format!("Could not open the model: {e}"))),
         });
         notices.extend(crashed.map(Notice::error));
         self.session.notices.extend(notices);
@@ -552,7 +552,7 @@ impl App {
                 .flatten()
                 {
                     ui.separator();
-                    ui.spinner();
+                    busy_mark(ui);
                     ui.label(busy);
                 }
                 ui.with_layout(egui::Layout::right_to_left(egui::Align::Center), |ui| {
@@ -635,6 +635,14 @@ impl eframe::App for App {
     fn save(&mut self, storage: &mut dyn eframe::Storage) {
         eframe::set_value(storage, eframe::APP_KEY, self);
     }
+}
+
+/// A still dot beside "working" texts. Not a spinner: a spinner repaints every frame, and a
+/// frame with a large 3D view costs real time while a job wants the processor.
+pub(crate) fn busy_mark(ui: &mut egui::Ui) {
+    let (rect, _) = ui.allocate_exact_size(egui::vec2(10.0, 10.0), egui::Sense::hover());
+    ui.painter()
+        .circle_filled(rect.center(), 4.0, palette::accent_colour());
 }
 
 /// The caution, framed so it is not overlooked.

@@ -161,7 +161,7 @@ impl ReviewTab {
         match checked {
             Some(Ok(e)) => *evaluation = Some(e),
             Some(Err(e)) => actions.push(Action::Notice(Notice::error(format!(
-                "checking the model: {e}"
+                "Could not check the model: {e}"
             )))),
             None => {}
         }

@@ -268,7 +268,7 @@ impl SortTab {
             ui.add(
                 egui::ProgressBar::new(fraction)
                     .text(format!("{} of {} scans", self.rows.len(), self.found))
-                    .animate(running),
+                    .animate(false),
             );
             let count = |status: Option<Status>| {
                 self.rows

@@ -244,7 +244,9 @@ impl TeachTab {
                 }
             }
             Some(Err(e)) => {
-                actions.push(Action::Notice(Notice::error(format!("teaching: {e}"))));
+                actions.push(Action::Notice(Notice::error(format!(
+                    "Could not teach: {e}"
+                ))));
                 *error = Some(e.to_string());
             }
             None => {}
@@ -472,6 +474,10 @@ fn choice(ui: &mut egui::Ui, id: &str, value: &mut String, options: &[&str]) -> 
 }
 
 fn progress(ui: &mut egui::Ui, run: &Run, running: bool) {
+    if running {
+        // Keeps the clock going between the train loop's events, at one frame a second.
+        ui.ctx().request_repaint_after(Duration::from_secs(1));
+    }
     let elapsed = run.ended.unwrap_or_else(|| run.started.elapsed());
     let eta = (running && run.fraction > 0.01).then(|| {
         let total = elapsed.as_secs_f32() / run.fraction;
@@ -495,7 +501,7 @@ fn progress(ui: &mut egui::Ui, run: &Run, running: bool) {
     ui.add(
         egui::ProgressBar::new(run.fraction)
             .text(text)
-            .animate(running),
+            .animate(false),
     );
 }
 

@@ -33,6 +33,11 @@ const ZOOM_PER_POINT: f32 = 0.0015;
 /// Far-to-near ordering uses a counting sort on depth quantised to this many steps: O(n), and
 /// finer than any visible overlap of points a few pixels wide.
 const DEPTH_BUCKETS: usize = 4096;
+/// While the camera moves, at most about this many points are drawn (every k-th point), so
+/// orbiting a large scan stays fluid; the full cloud is drawn once the camera rests. egui
+/// copies every vertex each frame (about 20 ms for 200k points on a busy 2-core machine), so
+/// the mesh size is what limits the frame rate.
+const POINTS_WHILE_MOVING: usize = 50_000;
 /// How much darker the farthest point is than the nearest: a cheap depth cue.
 const DEPTH_SHADE: f32 = 0.45;
 
@@ -544,8 +549,19 @@ struct Scratch {
     projected: Vec<[f32; 3]>,
     /// Per point: its depth bucket (0 = farthest), or `u16::MAX` when not drawn.
     bucket_of: Vec<u16>,
-    order: Vec<u32>,
+    /// The drawn points far to near, with their colour: written in scattered order, read in
+    /// sequence (scattered writes cost less than scattered reads).
+    sorted: Vec<Placed>,
     bucket_starts: Vec<u32>,
+}
+
+/// One point on screen: position, depth and colour.
+#[derive(Clone, Copy, Default)]
+struct Placed {
+    x: f32,
+    y: f32,
+    depth: f32,
+    colour: Color32,
 }
 
 /// Points per thread below which splitting the work costs more than it saves.
@@ -582,22 +598,29 @@ fn split_run<A: Send, B: Sync, R: Send>(
 }
 
 /// Builds into `mesh` one square of side `point_size` per visible point, far to near, darker
-/// with depth. Points that are transparent, behind the camera or off `clip` are skipped.
+/// with depth, taking every `stride`-th point. Points that are transparent, behind the camera
+/// or off `clip` are skipped.
+#[expect(
+    clippy::too_many_arguments,
+    reason = "one call site; a struct would only rename them"
+)]
 fn build_mesh(
     projector: &Projector,
     positions: &[[f32; 3]],
     colours: &[Color32],
+    stride: usize,
     point_size: f32,
     clip: Rect,
     scratch: &mut Scratch,
     mesh: &mut Mesh,
 ) {
+    let stride = stride.max(1);
     let half = 0.5 * point_size;
     let clip = clip.expand(half);
     let Scratch {
         projected,
         bucket_of,
-        order,
+        sorted,
         bucket_starts,
     } = scratch;
     let n = positions.len().min(colours.len());
@@ -607,8 +630,10 @@ fn build_mesh(
     let ranges = split_run(projected, &positions[..n], 1, |out, points, first| {
         let (mut near, mut far) = (f32::INFINITY, f32::NEG_INFINITY);
         for (k, (o, &p)) in out.iter_mut().zip(points).enumerate() {
-            *o = match projector.project(p) {
-                Some((s, depth)) if colours[first + k].a() != 0 && clip.contains(s) => {
+            let i = first + k;
+            let drawn = i % stride == 0 && colours[i].a() != 0;
+            *o = match drawn.then(|| projector.project(p)).flatten() {
+                Some((s, depth)) if clip.contains(s) => {
                     near = near.min(depth);
                     far = far.max(depth);
                     [s.x, s.y, depth]
@@ -648,11 +673,16 @@ fn build_mesh(
         bucket_starts[b] += bucket_starts[b - 1];
     }
     let visible = bucket_starts[DEPTH_BUCKETS] as usize;
-    order.resize(visible, 0);
-    for (i, &b) in bucket_of.iter().enumerate() {
+    sorted.resize(visible, Placed::default());
+    for ((&b, p), &colour) in bucket_of.iter().zip(projected.iter()).zip(colours) {
         if b != u16::MAX {
             let slot = &mut bucket_starts[b as usize];
-            order[*slot as usize] = i as u32;
+            sorted[*slot as usize] = Placed {
+                x: p[0],
+                y: p[1],
+                depth: p[2],
+                colour,
+            };
             *slot += 1;
         }
     }
@@ -664,12 +694,15 @@ fn build_mesh(
         color: Color32::TRANSPARENT,
     };
     mesh.vertices.resize(4 * visible, blank);
-    let projected = &*projected;
-    split_run(&mut mesh.vertices, order, 4, |quads, points, _| {
-        for (quad, &i) in quads.chunks_exact_mut(4).zip(points) {
-            let [x, y, depth] = projected[i as usize];
+    split_run(&mut mesh.vertices, sorted, 4, |quads, points, _| {
+        for (quad, p) in quads.chunks_exact_mut(4).zip(points) {
+            let Placed {
+                x,
+                y,
+                depth,
+                colour: c,
+            } = *p;
             let shade = 1.0 - DEPTH_SHADE * (depth - near) / span;
-            let c = colours[i as usize];
             let colour = Color32::from_rgba_premultiplied(
                 (c.r() as f32 * shade) as u8,
                 (c.g() as f32 * shade) as u8,
@@ -706,6 +739,7 @@ struct MeshKey {
     point_size: f32,
     colour: ColourBy,
     hide_removed: bool,
+    stride: usize,
 }
 
 /// One on-screen 3D view: its cached mesh and buffers. The camera and settings are passed in,
@@ -810,6 +844,19 @@ impl PointView {
             self.colours_key = Some(colours_key);
             self.key = None;
         }
+        // Moving = the camera changed since the last mesh of this cloud.
+        let moving = self
+            .key
+            .is_some_and(|k| k.cloud == cloud.id && k.camera != *camera);
+        let stride = if moving {
+            cloud.len().div_ceil(POINTS_WHILE_MOVING).max(1)
+        } else {
+            1
+        };
+        if stride > 1 {
+            // One more frame once the pointer rests, to draw every point.
+            painter.ctx().request_repaint();
+        }
         let key = MeshKey {
             cloud: cloud.id,
             camera: *camera,
@@ -817,6 +864,7 @@ impl PointView {
             point_size: settings.point_size,
             colour,
             hide_removed: settings.hide_removed,
+            stride,
         };
         if self.key != Some(key) {
             // Reuse last frame's buffers when egui has let go of them (the usual case).
@@ -828,6 +876,7 @@ impl PointView {
                     &camera.projector(rect),
                     &cloud.points.positions,
                     &self.colours,
+                    stride,
                     settings.point_size,
                     rect,
                     &mut self.scratch,
@@ -1146,6 +1195,7 @@ pub(crate) mod tests {
             &camera.projector(view_rect()),
             &cloud.points.positions,
             &colours,
+            1,
             3.0,
             view_rect(),
             &mut Scratch::default(),
@@ -1172,6 +1222,7 @@ pub(crate) mod tests {
             &p,
             &cloud.points.positions,
             &colours,
+            1,
             2.0,
             view_rect(),
             &mut Scratch::default(),
@@ -1194,6 +1245,34 @@ pub(crate) mod tests {
             .collect();
         assert_eq!(depths.len(), 3);
         assert!(depths.windows(2).all(|w| w[0] >= w[1]), "{depths:?}");
+    }
+
+    #[test]
+    fn a_moving_camera_draws_a_sample_then_every_point_at_rest() {
+        let cloud = practice_cloud(200_000, 5);
+        let ctx = egui::Context::default();
+        let settings = ViewSettings::default();
+        let mut camera = Camera::default();
+        let mut view = PointView::default();
+        let mut frame = |camera: &mut Camera| {
+            let input = egui::RawInput {
+                screen_rect: Some(Rect::from_min_size(Pos2::ZERO, Vec2::new(2000.0, 1400.0))),
+                ..Default::default()
+            };
+            let _ = ctx.run_ui(input, |ui| {
+                view.ui(ui, camera, &settings, Some(&cloud), "");
+            });
+            view.mesh.vertices.len() / 4
+        };
+        let full = frame(&mut camera);
+        assert!(full > 150_000, "{full}");
+        camera.orbit(Vec2::new(10.0, 0.0));
+        let moving = frame(&mut camera);
+        assert!(
+            moving <= POINTS_WHILE_MOVING && moving > POINTS_WHILE_MOVING / 2,
+            "{moving}"
+        );
+        assert_eq!(frame(&mut camera), full, "at rest again: every point");
     }
 
     /// Times the mesh build for 200k points (printed, not asserted: speed is measured, never
@@ -1219,6 +1298,7 @@ pub(crate) mod tests {
                     &camera.projector(rect),
                     &cloud.points.positions,
                     &colours,
+                    1,
                     2.5,
                     rect,
                     &mut scratch,

@@ -13,6 +13,10 @@ use std::thread::JoinHandle;
 
 use super::AppError;
 
+/// How soon the UI shows a job's events: quick to the eye, and at most 20 frames a second
+/// however fast the job sends (each frame repaints a possibly large 3D view).
+const REPAINT_WITHIN: std::time::Duration = std::time::Duration::from_millis(50);
+
 /// The job's side: sends events to the UI and tells the job whether it should stop.
 pub(crate) struct Reporter<E> {
     events: Sender<E>,
@@ -21,11 +25,12 @@ pub(crate) struct Reporter<E> {
 }
 
 impl<E> Reporter<E> {
-    /// Hands `event` to the UI and wakes it. Returns `false` when the UI has gone away
-    /// (the worker was dropped), so the job can stop early.
+    /// Hands `event` to the UI and wakes it within [`REPAINT_WITHIN`], so a job that sends
+    /// many events a second costs a few frames, not one each. Returns `false` when the UI
+    /// has gone away (the worker was dropped), so the job can stop early.
     pub(crate) fn send(&self, event: E) -> bool {
         let delivered = self.events.send(event).is_ok();
-        self.ctx.request_repaint();
+        self.ctx.request_repaint_after(REPAINT_WITHIN);
         delivered
     }
 
