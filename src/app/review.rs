@@ -695,6 +695,9 @@ impl ReviewTab {
         self.scan = Some(scan);
         self.typical = Some(typical);
     }
+    pub(crate) fn fixes_done(&self) -> usize {
+        self.fixes.len()
+    }
     pub(crate) fn listed(&self) -> usize {
         self.cell_cases().len()
     }

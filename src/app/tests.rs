@@ -552,3 +552,64 @@ impl eframe::App for ShotRunner {
         ui.ctx().request_repaint();
     }
 }
+
+#[test]
+fn fixing_a_label_asks_moves_and_undoes() {
+    let root = std::env::temp_dir().join(format!("partsift-app-fix-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&root);
+    let bin = root.join("bin");
+    let evaluation = review::tests::evaluation(&bin);
+    for case in &evaluation.cases {
+        std::fs::create_dir_all(case.path.parent().unwrap()).unwrap();
+        std::fs::write(&case.path, b"ply").unwrap();
+    }
+    let scan = bin.join("washer/washer-00.ply");
+    let mut app = App {
+        last_bin: Some(bin.clone()),
+        tab: Tab::Review,
+        ..Default::default()
+    };
+    app.review.set_evaluation(evaluation);
+    let mut h = harness(app);
+    h.run();
+    h.get_by_label("2").click();
+    h.run();
+    h.get_by_label_contains("washer-00.ply").click();
+    h.step();
+    run_until(&mut h, |a| a.review.busy().is_none());
+
+    // Move to another type: asks first; Cancel leaves the file alone.
+    h.get_by_label("Fix the label:").click();
+    h.run();
+    h.get_by_role_and_label(egui::accesskit::Role::Button, "spacer")
+        .click();
+    h.run();
+    h.get_by_label("Move this scan?");
+    h.get_by_label("Cancel").click();
+    h.run();
+    assert!(scan.exists());
+
+    h.get_by_label("Fix the label:").click();
+    h.run();
+    h.get_by_role_and_label(egui::accesskit::Role::Button, "spacer")
+        .click();
+    h.run();
+    h.get_by_label("Move").click();
+    h.step();
+    let moved = bin.join("spacer/washer-00.ply");
+    assert!(!scan.exists() && moved.exists());
+    assert_eq!(h.state().review.fixes_done(), 1);
+
+    h.run_steps(2);
+    h.get_by_label("Undo: moved to spacer").click();
+    h.step();
+    assert!(scan.exists() && !moved.exists());
+
+    // Set aside: out of the bin, into a folder beside it.
+    h.run_steps(2);
+    h.get_by_label("Set aside").click();
+    h.step();
+    assert!(root.join("bin-set-aside/washer/washer-00.ply").exists());
+    assert!(!scan.exists());
+    std::fs::remove_dir_all(&root).unwrap();
+}
