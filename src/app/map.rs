@@ -6,7 +6,7 @@ use eframe::egui;
 use std::path::PathBuf;
 use std::sync::Arc;
 
-use egui_plot::{HoverPosition, Legend, MarkerShape, Plot, PlotPoint, Points};
+use egui_plot::{HoverPosition, Legend, MarkerShape, Plot, PlotPoint, PlotTransform, Points};
 
 use super::backend;
 use super::inspect::file_name;
@@ -190,17 +190,24 @@ fn scatter(ui: &mut egui::Ui, data: &MapData) -> Option<PathBuf> {
         return None;
     }
     let pointer = response.response.interact_pointer_pos()?;
-    let nearest = data
+    dot_at(data, &response.transform, pointer).map(|d| d.path.clone())
+}
+
+/// The dot nearest to screen position `pointer`, if within [`CLICK_RADIUS`] of it.
+fn dot_at<'a>(
+    data: &'a MapData,
+    transform: &PlotTransform,
+    pointer: egui::Pos2,
+) -> Option<&'a MapDot> {
+    let (dot, distance) = data
         .dots
         .iter()
         .map(|d| {
-            let at = response
-                .transform
-                .position_from_point(&PlotPoint::new(d.xy[0], d.xy[1]));
+            let at = transform.position_from_point(&PlotPoint::new(d.xy[0], d.xy[1]));
             (d, at.distance(pointer))
         })
         .min_by(|a, b| a.1.total_cmp(&b.1))?;
-    (nearest.1 <= CLICK_RADIUS).then(|| nearest.0.path.clone())
+    (distance <= CLICK_RADIUS).then_some(dot)
 }
 
 #[cfg(test)]
@@ -210,5 +217,36 @@ impl MapTab {
     }
     pub(crate) fn has_data(&self) -> bool {
         self.data.is_some()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use egui_plot::PlotBounds;
+
+    #[test]
+    fn a_click_picks_the_nearest_dot_within_reach() {
+        let dot = |name: &str, xy| MapDot {
+            path: name.into(),
+            label: 0,
+            xy,
+            suspicious: false,
+        };
+        let data = MapData {
+            part_types: vec!["washer".into()],
+            dots: vec![dot("a.ply", [0.0, 0.0]), dot("b.ply", [10.0, 10.0])],
+        };
+        // 100 x 100 points showing 0..10 on both axes: 10 points per unit, y up.
+        let rect = egui::Rect::from_min_size(egui::pos2(0.0, 0.0), egui::vec2(100.0, 100.0));
+        let transform = PlotTransform::new(
+            rect,
+            PlotBounds::from_min_max([0.0, 0.0], [10.0, 10.0]),
+            false,
+        );
+        let at = |x, y| dot_at(&data, &transform, egui::pos2(x, y)).map(|d| d.path.clone());
+        assert_eq!(at(3.0, 97.0), Some("a.ply".into()));
+        assert_eq!(at(99.0, 2.0), Some("b.ply".into()));
+        assert_eq!(at(50.0, 50.0), None, "too far from both");
     }
 }

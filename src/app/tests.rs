@@ -296,6 +296,13 @@ fn n_and_p_step_through_the_parts_bin() {
     });
     let mut h = harness(app);
     h.run();
+    // Keys still work after the mouse used a button.
+    h.get_by_role_and_label(egui::accesskit::Role::Button, "Teach")
+        .click();
+    h.run();
+    h.get_by_role_and_label(egui::accesskit::Role::Button, "Inspect")
+        .click();
+    h.run();
     h.key_press(egui::Key::N);
     h.step();
     assert_eq!(
