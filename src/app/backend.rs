@@ -1,18 +1,21 @@
 //! Every library call the app makes, in one place, each turning library types into the plain
 //! data the tabs show. All of these run on a worker thread, never on the UI thread.
 //!
-//! Wiring status: the scan readers, the clean-up recipe, the network and the train loop are
-//! being written beside the app. Until they land, the calls that need them answer
-//! [`AppError::NotInThisBuild`], which the tabs show as a readable message. Wiring one in means
-//! replacing that body with the library call; the signatures (and so the tabs) stay as they are.
+//! Wiring status: reading a parts bin, reading a scan and its clean-up go through the library.
+//! Teaching, model files and verdicts still answer [`AppError::NotInThisBuild`] (shown as a
+//! readable message) until the train loop is wired in here; the tabs stay as they are.
 
 use std::path::{Path, PathBuf};
 
-use super::inspect::{InspectEvent, Verdict};
+use partsift::learn;
+use partsift::prep::{Fate, RecipeSettings};
+use partsift::scan::{self, PointCloud};
+
+use super::inspect::{Cleanup, InspectEvent, ScanShown, TrueSize, Verdict};
 use super::map::MapData;
 use super::review::Evaluation;
-use super::teach::{BinSurvey, Taught, TeachEvent, TeachSettings};
-use super::view3d::Cloud3d;
+use super::teach::{BinSurvey, Taught, TeachEvent, TeachSettings, TypeEntry};
+use super::view3d::{Cloud3d, PointKind};
 use super::worker::{JobEvent, Reporter};
 use super::AppError;
 
@@ -56,30 +59,127 @@ pub(crate) fn scan_files(folder: &Path) -> Result<Vec<PathBuf>, AppError> {
 
 /// The parts bin at `bin`: its types with their scans, warnings (too few scans, imbalance)
 /// and the files that could not be read, each with its error.
-pub(crate) fn survey_bin(_bin: &Path) -> Result<BinSurvey, AppError> {
-    Err(AppError::NotInThisBuild {
-        what: "reading a parts bin",
+pub(crate) fn survey_bin(bin: &Path) -> Result<BinSurvey, AppError> {
+    let parts_bin = learn::scan_bin(bin).map_err(|e| AppError::Bin(e.to_string()))?;
+    let counts = parts_bin.counts();
+    let mut types: Vec<TypeEntry> = parts_bin
+        .part_types
+        .iter()
+        .zip(&counts)
+        .map(|(name, &count)| TypeEntry {
+            name: name.clone(),
+            scans: Vec::with_capacity(count),
+            warnings: Vec::new(),
+        })
+        .collect();
+    for scan in &parts_bin.scans {
+        types[scan.label].scans.push(scan.path.clone());
+    }
+    let mut warnings = Vec::new();
+    for warning in parts_bin.warnings() {
+        match &warning {
+            learn::BinWarning::FewScans { part_type, .. } => {
+                if let Some(entry) = types.iter_mut().find(|t| &t.name == part_type) {
+                    entry.warnings.push(warning.to_string());
+                }
+            }
+            _ => warnings.push(warning.to_string()),
+        }
+    }
+    Ok(BinSurvey {
+        root: parts_bin.root.clone(),
+        types,
+        unreadable: Vec::new(),
+        warnings,
     })
+}
+
+/// Reads a scan, in mm.
+fn read_scan(path: &Path) -> Result<scan::Scan, AppError> {
+    Ok(scan::load(path, &scan::LoadOptions::default())?)
+}
+
+fn point_kind(fate: Fate) -> PointKind {
+    match fate {
+        Fate::Part => PointKind::Part,
+        Fate::NonFinite => PointKind::NonFinite,
+        Fate::Cropped => PointKind::Cropped,
+        Fate::Table => PointKind::Table,
+        Fate::Stray => PointKind::Stray,
+        Fate::OtherCluster => PointKind::OtherCluster,
+    }
 }
 
 /// Shows one scan, then its verdict: sends [`InspectEvent::Shown`] as soon as the points are
 /// read (mm), [`InspectEvent::CleanedUp`] after the recipe, then (with a model)
 /// [`InspectEvent::Judged`]; stops at the first error, which it sends in that event.
 pub(crate) fn inspect_scan(
-    _path: &Path,
+    path: &Path,
     _model: Option<&LoadedModel>,
     report: &Reporter<InspectEvent>,
 ) {
-    report.send(InspectEvent::Shown(Err(AppError::NotInThisBuild {
-        what: "reading scans",
+    let scan = match read_scan(path) {
+        Ok(scan) => scan,
+        Err(e) => {
+            report.send(InspectEvent::Shown(Err(e)));
+            return;
+        }
+    };
+    let cloud_mm = scan.cloud_mm();
+    let guessed = if scan.units == scan.units_guess {
+        " (guessed from the extent)"
+    } else {
+        ""
+    };
+    let facts = vec![
+        scan.format.name().to_string(),
+        format!("{} points", scan.cloud.len()),
+        format!("units {}{guessed}", scan.units),
+    ];
+    report.send(InspectEvent::Shown(Ok(ScanShown {
+        cloud: Cloud3d::new(cloud_mm.clone()),
+        facts,
     })));
+    let cleanup = RecipeSettings::default()
+        .check()
+        .map_err(|e| AppError::Recipe(e.to_string()))
+        .and_then(|recipe| {
+            recipe
+                .run(&cloud_mm)
+                .map_err(|e| AppError::Recipe(format!("{}: {e}", path.display())))
+        })
+        .map(|prepared| {
+            // The whole scan in the recipe's frame, in mm: table at the bottom, part up.
+            let frame = prepared.frame;
+            let radius = prepared.size.radius_mm;
+            let levelled = cloud_mm
+                .positions
+                .iter()
+                .map(|&p| frame.apply(p).map(|c| c * radius))
+                .collect();
+            let kinds = prepared.fate.iter().map(|&f| point_kind(f)).collect();
+            Cleanup {
+                size: TrueSize {
+                    extents_mm: prepared.size.extents_mm,
+                    radius_mm: radius,
+                },
+                report: prepared
+                    .report
+                    .to_string()
+                    .lines()
+                    .map(str::to_string)
+                    .collect(),
+                levelled: Some(
+                    Cloud3d::new(PointCloud::from_positions(levelled)).with_kinds(kinds),
+                ),
+            }
+        });
+    report.send(InspectEvent::CleanedUp(cleanup));
 }
 
 /// One scan's points in mm, for Review's side-by-side views.
-pub(crate) fn load_cloud(_path: &Path) -> Result<Cloud3d, AppError> {
-    Err(AppError::NotInThisBuild {
-        what: "reading scans",
-    })
+pub(crate) fn load_cloud(path: &Path) -> Result<Cloud3d, AppError> {
+    Ok(Cloud3d::new(read_scan(path)?.cloud_mm()))
 }
 
 /// Teaches a model on the parts bin at `bin`, sending [`TeachEvent`]s as it goes. Stops early

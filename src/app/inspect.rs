@@ -78,10 +78,6 @@ pub(crate) struct Judgement {
 /// [`InspectEvent::CleanedUp`] when there is no model.
 pub(crate) enum InspectEvent {
     Shown(Result<ScanShown, AppError>),
-    #[cfg_attr(
-        not(test),
-        expect(dead_code, reason = "sent by backend.rs once the recipe is wired in")
-    )]
     CleanedUp(Result<Cleanup, AppError>),
     #[cfg_attr(
         not(test),

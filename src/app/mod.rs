@@ -132,6 +132,10 @@ pub(crate) enum AppError {
         path: PathBuf,
         source: std::io::Error,
     },
+    #[error("{0}")]
+    Bin(String),
+    #[error("clean-up: {0}")]
+    Recipe(String),
     #[error("{path}: a file of that name is already there; nothing was moved")]
     Exists { path: PathBuf },
     #[error("{what} is not part of this build yet")]

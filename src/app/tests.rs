@@ -161,9 +161,9 @@ fn confusion_cell_click_lists_its_scans() {
         h.state().review.busy().is_some(),
         "the scans are read on a worker"
     );
-    // Reading scans is not wired in yet: the app must say so, not fail.
+    // The listed scans do not exist: the app must say so plainly, not fail.
     run_until(&mut h, |a| a.review.busy().is_none());
-    h.get_by_label_contains("reading scans is not part of this build yet");
+    h.get_by_label_contains("cannot read the file");
 }
 
 #[test]
@@ -278,8 +278,7 @@ fn dropped_scan_goes_to_inspect_and_errors_read_plainly() {
         .state()
         .inspect
         .error()
-        .is_some_and(|e| e.contains("not part of this build")));
-    h.get_by_label("reading scans is not part of this build yet");
+        .is_some_and(|e| e.contains("/nowhere/dropped.xyz: cannot read the file")));
 }
 
 #[test]

@@ -324,10 +324,6 @@ fn next_cloud_id() -> u64 {
 
 impl Cloud3d {
     /// A cloud of `points` (positions in mm). Non-finite points are kept but never drawn.
-    #[cfg_attr(
-        not(test),
-        expect(dead_code, reason = "called in backend.rs once scans are read")
-    )]
     pub(crate) fn new(points: PointCloud) -> Self {
         Cloud3d {
             id: next_cloud_id(),
@@ -353,10 +349,6 @@ impl Cloud3d {
     }
 
     /// Adds what the recipe did with each point; ignored unless there is one per point.
-    #[cfg_attr(
-        not(test),
-        expect(dead_code, reason = "called in backend.rs once the recipe is wired in")
-    )]
     pub(crate) fn with_kinds(mut self, kinds: Vec<PointKind>) -> Self {
         if kinds.len() == self.points.positions.len() {
             self.kinds = Some(kinds);
