@@ -7,6 +7,7 @@
 //! [`synth`] makes practice scans of our own machine-shop parts bin.
 //! Nothing here knows about a screen: the desktop app and the command line live in the binary.
 
+pub mod bench;
 pub mod fsutil;
 pub mod graph;
 pub mod learn;

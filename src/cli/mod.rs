@@ -2,6 +2,7 @@
 //! Exit codes: 0 all went well, 1 a file failed (the others were still processed and
 //! reported), 2 a usage error.
 
+mod bench;
 mod scans;
 
 use std::path::PathBuf;
@@ -80,6 +81,8 @@ enum Command {
         #[arg(long, num_args = 2, value_names = ["WIDTH", "HEIGHT"], default_values_t = [640, 480])]
         resolution: Vec<u32>,
     },
+    /// Measure training and inference speed, one-scan latency, peak memory and matrix-product rates.
+    Bench(bench::BenchArgs),
 }
 
 /// How to read scan files.
@@ -174,6 +177,7 @@ pub fn main() -> ExitCode {
             seed,
             resolution,
         }) => scans::synth(&out_dir, per_type, seed, [resolution[0], resolution[1]]),
+        Some(Command::Bench(args)) => bench::bench(args),
     };
     match outcome {
         Outcome::Ok => ExitCode::SUCCESS,

@@ -35,6 +35,7 @@ macro_rules! named_choice {
 }
 
 pub(crate) mod batch;
+pub(crate) mod fast;
 pub mod file;
 #[cfg(test)]
 pub(crate) mod gradcheck;

@@ -4,10 +4,12 @@
 use serde::{Deserialize, Serialize};
 
 use crate::net::batch::Batch;
+use crate::net::fast::trunk::FastTrunkCache;
+use crate::net::fast::{self, Kernels};
 use crate::net::head::{DropoutMasks, Head, SIZE_VALUES};
 use crate::net::loss::{cross_entropy_backward, cross_entropy_forward};
 use crate::net::params::{Builder, Pass, Running, Store, TensorEntry};
-use crate::net::trunk::Trunk;
+use crate::net::trunk::{Trunk, TrunkCache};
 use crate::rng::Rng;
 
 /// Which network: `edgeconv` (Wang et al. 2019, the default), `pointnet` (Qi et al. 2017)
@@ -151,14 +153,38 @@ pub(crate) struct Model {
     pub dims: Dims,
     pub trunk: Trunk,
     pub head: Head,
+    /// The fast path (EdgeConv) or the plain layers; [`Network::new`] picks the fast one.
+    pub kernels: Kernels,
 }
 
 pub(crate) struct ModelCache {
-    trunk: crate::net::trunk::TrunkCache,
-    head: crate::net::head::HeadCache,
+    pub trunk: TrunkPass,
+    pub head: crate::net::head::HeadCache,
+}
+
+/// The trunk's cache from whichever path ran.
+pub(crate) enum TrunkPass {
+    Plain(TrunkCache),
+    Fast(FastTrunkCache),
 }
 
 impl Model {
+    /// The pooled features, one row per sample, on the path `kernels` picks.
+    pub fn trunk_forward(&self, pass: &mut Pass<'_>, points: Batch) -> (Batch, TrunkPass) {
+        match (&self.trunk, self.kernels) {
+            (Trunk::EdgeConv { layers, embed }, Kernels::Fast)
+                if layers.iter().all(|l| l.k <= fast::MAX_K) =>
+            {
+                let (pooled, cache) = fast::trunk::forward(layers, embed, pass, points);
+                (pooled, TrunkPass::Fast(cache))
+            }
+            _ => {
+                let (pooled, cache) = self.trunk.forward(pass, points);
+                (pooled, TrunkPass::Plain(cache))
+            }
+        }
+    }
+
     /// Class scores (`samples == 1`, one row per sample of `points`).
     pub fn forward(
         &self,
@@ -167,7 +193,7 @@ impl Model {
         size: &Batch,
         masks: Option<DropoutMasks>,
     ) -> (Batch, ModelCache) {
-        let (pooled, trunk) = self.trunk.forward(pass, points);
+        let (pooled, trunk) = self.trunk_forward(pass, points);
         let (logits, head) = self
             .head
             .forward(pass, pooled.into_single_sample(), size, masks);
@@ -188,13 +214,14 @@ impl Model {
         let dpooled = self
             .head
             .backward(params, cache.head, dlogits, grads.as_deref_mut());
-        self.trunk.backward(
-            params,
-            cache.trunk,
-            &dpooled.into_samples(samples),
-            grads,
-            input_grad,
-        )
+        let dpooled = dpooled.into_samples(samples);
+        match (cache.trunk, &self.trunk) {
+            (TrunkPass::Plain(c), trunk) => trunk.backward(params, c, &dpooled, grads, input_grad),
+            (TrunkPass::Fast(c), Trunk::EdgeConv { layers, embed }) => {
+                fast::trunk::backward(layers, embed, params, c, &dpooled, grads, input_grad)
+            }
+            (TrunkPass::Fast(_), _) => unreachable!("the fast path serves EdgeConv only"),
+        }
     }
 }
 
@@ -244,7 +271,12 @@ impl Network {
         } = b;
         Network {
             config,
-            model: Model { dims, trunk, head },
+            model: Model {
+                dims,
+                trunk,
+                head,
+                kernels: Kernels::Fast,
+            },
             grads: vec![0.0; params.values.len()],
             params,
             running,
@@ -349,7 +381,7 @@ impl Network {
     /// Panics as [`Network::infer`].
     pub fn embed(&self, points: &[f32], size: &[f32]) -> Vec<f32> {
         self.in_chunks(points, size, |pass, points, size| {
-            let (pooled, _) = self.model.trunk.forward(pass, points);
+            let (pooled, _) = self.model.trunk_forward(pass, points);
             self.model
                 .head
                 .features(pass, pooled.into_single_sample(), size)

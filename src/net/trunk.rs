@@ -232,6 +232,23 @@ impl Trunk {
     }
 }
 
+impl TrunkCache {
+    /// An EdgeConv trunk's discrete choices: per layer the neighbour lists and the winning
+    /// neighbour slot of every output value, then the point that won every pooled maximum.
+    /// The fast path's tests give them to it, so that both route every gradient alike.
+    #[cfg(test)]
+    pub(crate) fn edgeconv_choices(&self) -> (Vec<Vec<u32>>, Vec<Vec<u32>>, Vec<u32>) {
+        match &self.layers {
+            LayerCaches::EdgeConv(caches) => (
+                caches.iter().map(|c| c.neighbours.clone()).collect(),
+                caches.iter().map(|c| c.pool.winners.clone()).collect(),
+                self.pool.max.winners.clone(),
+            ),
+            _ => panic!("not an EdgeConv trunk"),
+        }
+    }
+}
+
 /// Runs layers one after the other, keeping every layer's output (for the concatenation
 /// after the last) and cache. `step(i, x)` is layer `i`'s forward pass.
 fn forward_stacked<C>(

@@ -15,8 +15,8 @@ pub(crate) const MOMENTUM: f32 = 0.1;
 #[derive(Clone, Debug)]
 pub(crate) struct BatchNorm {
     pub channels: usize,
-    gamma: Slot,
-    beta: Slot,
+    pub(crate) gamma: Slot,
+    pub(crate) beta: Slot,
     running_mean: Slot,
     running_var: Slot,
 }
@@ -28,6 +28,15 @@ pub(crate) struct BatchNormCache {
     /// Normalised with the batch's own statistics (training), so the gradient flows
     /// through the mean and variance too.
     batch_stats: bool,
+}
+
+/// What batch norm normalises with, per channel: `x_hat = (x - mean) * inv_std`.
+#[derive(Clone, Debug)]
+pub(crate) struct Normaliser {
+    pub mean: Vec<f32>,
+    pub inv_std: Vec<f32>,
+    /// The batch's own statistics (training), so the gradient flows through them too.
+    pub batch_stats: bool,
 }
 
 impl BatchNorm {
@@ -51,11 +60,50 @@ impl BatchNorm {
     pub fn forward(&self, pass: &mut Pass<'_>, x: Batch) -> (Batch, BatchNormCache) {
         let c = self.channels;
         assert_eq!(x.cols, c, "batch norm width");
+        let Normaliser {
+            mean,
+            inv_std,
+            batch_stats,
+        } = self.normaliser(pass, x.samples * x.rows, || batch_moments(&x));
+        let (gamma, beta) = (self.gamma.of(pass.params), self.beta.of(pass.params));
+        let mut normalized = x;
+        let mut y = Batch::zeros(normalized.samples, normalized.rows, c);
+        let chunk = y.chunk();
+        y.data
+            .par_chunks_mut(chunk)
+            .zip(normalized.data.par_chunks_mut(chunk))
+            .for_each(|(ys, xs)| {
+                for (yr, xr) in ys.chunks_exact_mut(c).zip(xs.chunks_exact_mut(c)) {
+                    for j in 0..c {
+                        xr[j] = (xr[j] - mean[j]) * inv_std[j];
+                        yr[j] = gamma[j] * xr[j] + beta[j];
+                    }
+                }
+            });
+        let cache = BatchNormCache {
+            normalized,
+            inv_std,
+            batch_stats,
+        };
+        (y, cache)
+    }
+
+    /// The per-channel mean and `1 / sqrt(var + eps)` to normalise with. In training they come
+    /// from `moments()`, the batch's mean and biased variance over its `count` rows (the fast
+    /// path computes them its own way), and the running statistics are updated; otherwise
+    /// they are the running ones and `moments` is not called.
+    ///
+    /// Panics in training if `count <= 1` (no variance to take).
+    pub fn normaliser(
+        &self,
+        pass: &mut Pass<'_>,
+        count: usize,
+        moments: impl FnOnce() -> (Vec<f64>, Vec<f64>),
+    ) -> Normaliser {
         let (mean, inv_std, batch_stats): (Vec<f64>, Vec<f64>, bool) = match &mut pass.running {
             Running::Update(running) => {
-                let count = x.samples * x.rows;
                 assert!(count > 1, "batch norm in training needs more than one row");
-                let (mean, var) = batch_moments(&x);
+                let (mean, var) = moments();
                 let unbiased = count as f64 / (count - 1) as f64;
                 let rm = self.running_mean.of_mut(running);
                 for (r, m) in rm.iter_mut().zip(&mean) {
@@ -87,32 +135,11 @@ impl BatchNorm {
                 (mean, inv_std, false)
             }
         };
-        let mean: Vec<f32> = mean.iter().map(|&m| m as f32).collect();
-        let inv_std: Vec<f32> = inv_std.iter().map(|&s| s as f32).collect();
-        let (gamma, beta) = (self.gamma.of(pass.params), self.beta.of(pass.params));
-        let mut normalized = x;
-        let mut y = Batch::zeros(normalized.samples, normalized.rows, c);
-        let chunk = y.chunk();
-        y.data
-            .par_chunks_mut(chunk)
-            .zip(normalized.data.par_chunks_mut(chunk))
-            .for_each(|(ys, xs)| {
-                for (yr, xr) in ys.chunks_exact_mut(c).zip(xs.chunks_exact_mut(c)) {
-                    let per_channel = mean.iter().zip(&inv_std).zip(gamma.iter().zip(beta));
-                    for ((y, x), ((m, s), (g, b))) in
-                        yr.iter_mut().zip(xr.iter_mut()).zip(per_channel)
-                    {
-                        *x = (*x - m) * s;
-                        *y = g * *x + b;
-                    }
-                }
-            });
-        let cache = BatchNormCache {
-            normalized,
-            inv_std,
+        Normaliser {
+            mean: mean.iter().map(|&m| m as f32).collect(),
+            inv_std: inv_std.iter().map(|&s| s as f32).collect(),
             batch_stats,
-        };
-        (y, cache)
+        }
     }
 
     /// Adds `dL/dgamma = sum(dy * x_hat)` and `dL/dbeta = sum(dy)` into `grads` (when given)
@@ -139,10 +166,9 @@ impl BatchNorm {
                 .chunks_exact(c)
                 .zip(x_hat.sample(s).chunks_exact(c))
             {
-                for (((sb, sg), &d), &x) in dbeta.iter_mut().zip(dgamma.iter_mut()).zip(dr).zip(xr)
-                {
-                    *sb += d as f64;
-                    *sg += d as f64 * x as f64;
+                for j in 0..c {
+                    dbeta[j] += dr[j] as f64;
+                    dgamma[j] += dr[j] as f64 * xr[j] as f64;
                 }
             }
         });
@@ -172,9 +198,8 @@ impl BatchNorm {
             .zip(x_hat.data.par_chunks(chunk))
             .for_each(|(ds, xs)| {
                 for (dr, xr) in ds.chunks_exact_mut(c).zip(xs.chunks_exact(c)) {
-                    let per_channel = scale.iter().zip(mean_dy.iter().zip(&mean_dy_xhat));
-                    for ((d, x), (s, (mdy, mdx))) in dr.iter_mut().zip(xr).zip(per_channel) {
-                        *d = s * (*d - mdy - x * mdx);
+                    for j in 0..c {
+                        dr[j] = scale[j] * (dr[j] - mean_dy[j] - xr[j] * mean_dy_xhat[j]);
                     }
                 }
             });

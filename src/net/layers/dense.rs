@@ -10,8 +10,8 @@ use crate::net::params::{Builder, Pass};
 #[derive(Clone, Debug)]
 pub(crate) struct Dense {
     pub linear: Linear,
-    norm: BatchNorm,
-    act: LeakyRelu,
+    pub(crate) norm: BatchNorm,
+    pub(crate) act: LeakyRelu,
 }
 
 pub(crate) struct DenseCache {

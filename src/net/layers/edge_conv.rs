@@ -26,9 +26,9 @@ pub(crate) const DGCNN_SLOPE: f32 = 0.2;
 #[derive(Clone, Debug)]
 pub(crate) struct EdgeConv {
     pub k: usize,
-    linear: Linear,
-    norm: BatchNorm,
-    act: LeakyRelu,
+    pub(crate) linear: Linear,
+    pub(crate) norm: BatchNorm,
+    pub(crate) act: LeakyRelu,
 }
 
 pub(crate) struct EdgeConvCache {
@@ -37,7 +37,7 @@ pub(crate) struct EdgeConvCache {
     pub neighbours: Vec<u32>,
     norm: BatchNormCache,
     act: LeakyReluCache,
-    pool: MaxPoolCache,
+    pub(crate) pool: MaxPoolCache,
 }
 
 impl EdgeConv {

@@ -11,8 +11,8 @@ use crate::net::params::{Builder, Init, Slot};
 pub(crate) struct Linear {
     pub inputs: usize,
     pub outputs: usize,
-    weight: Slot,
-    bias: Option<Slot>,
+    pub(crate) weight: Slot,
+    pub(crate) bias: Option<Slot>,
 }
 
 impl Linear {

@@ -15,7 +15,7 @@ pub(crate) struct MaxPool {
 
 /// Which row of its group won, per output value.
 pub(crate) struct MaxPoolCache {
-    winners: Vec<u32>,
+    pub(crate) winners: Vec<u32>,
 }
 
 impl MaxPool {

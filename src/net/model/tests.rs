@@ -2,6 +2,7 @@
 //! determinism, and a toy problem that training must learn.
 
 use super::*;
+use crate::net::fast::Kernels;
 use crate::net::gradcheck::{check_gradient, random_batch, Tolerance};
 use crate::net::layers::edge_conv::nearest_neighbours;
 use crate::net::optim::{Optimizer, OptimizerKind};
@@ -36,7 +37,7 @@ pub(crate) fn tiny_network(arch: Arch, size_aware: bool, seed: u64) -> Network {
 /// places) rather than pure noise, so that the neighbour graphs look like those of real parts.
 /// Clouds alike would leave the head's batch norm, over a handful of samples, dividing by a
 /// tiny spread: a loss so steep and curved that no finite difference could follow it.
-fn clouds(rng: &mut Rng, samples: usize, n: usize) -> Batch {
+pub(crate) fn clouds(rng: &mut Rng, samples: usize, n: usize) -> Batch {
     let mut data = Vec::with_capacity(samples * n * 3);
     for _ in 0..samples {
         let axes = [
@@ -426,49 +427,54 @@ fn matches_pytorch_autograd_on_the_reference_fixture() {
         .collect();
     assert_eq!(first, want, "first-layer neighbours");
 
-    let eval = &fx["eval"];
-    assert_close(
-        "eval logits",
-        &net.infer(&points, &size),
-        &floats(&eval["logits"]),
-        1e-4,
-    );
-    let s = eval["saliency_sample"].as_u64().expect("sample") as usize;
-    let class = eval["saliency_class"].as_u64().expect("class") as usize;
-    let saliency = net.input_saliency(
-        &points[s * n * 3..(s + 1) * n * 3],
-        &size[s * 4..(s + 1) * 4],
-        class,
-    );
-    assert_close("saliency", &saliency, &floats(&eval["saliency"]), 1e-4);
-
-    let masks = [floats(&fx["masks"][0]), floats(&fx["masks"][1])];
-    let train = &fx["train"];
-    let out = net.train_step(
-        Batch::from_vec(points, 3, n, 3),
-        &Batch::from_vec(size, 1, 3, 4),
-        &labels,
-        fx["smoothing"].as_f64().expect("smoothing") as f32,
-        masks,
-    );
-    assert_close("train logits", &out.logits, &floats(&train["logits"]), 1e-4);
-    assert_close(
-        "loss",
-        &[out.loss],
-        &[train["loss"].as_f64().expect("loss") as f32],
-        1e-5,
-    );
-    for entry in &net.params.entries {
-        let want = floats(&train["grads"][&entry.name]);
+    // Both paths: the fast one (the default) and the plain layers (the test oracle).
+    for kernels in [Kernels::Fast, Kernels::Plain] {
+        let mut net = net.clone();
+        net.model.kernels = kernels;
+        let eval = &fx["eval"];
         assert_close(
-            &format!("grad {}", entry.name),
-            entry.slot.of(&net.grads),
-            &want,
+            "eval logits",
+            &net.infer(&points, &size),
+            &floats(&eval["logits"]),
             1e-4,
         );
-    }
-    for entry in &net.running.entries {
-        let want = floats(&train["running_after"][&entry.name]);
-        assert_close(&entry.name, entry.slot.of(&net.running.values), &want, 1e-5);
+        let s = eval["saliency_sample"].as_u64().expect("sample") as usize;
+        let class = eval["saliency_class"].as_u64().expect("class") as usize;
+        let saliency = net.input_saliency(
+            &points[s * n * 3..(s + 1) * n * 3],
+            &size[s * 4..(s + 1) * 4],
+            class,
+        );
+        assert_close("saliency", &saliency, &floats(&eval["saliency"]), 1e-4);
+
+        let masks = [floats(&fx["masks"][0]), floats(&fx["masks"][1])];
+        let train = &fx["train"];
+        let out = net.train_step(
+            Batch::from_vec(points.clone(), 3, n, 3),
+            &Batch::from_vec(size.clone(), 1, 3, 4),
+            &labels,
+            fx["smoothing"].as_f64().expect("smoothing") as f32,
+            masks,
+        );
+        assert_close("train logits", &out.logits, &floats(&train["logits"]), 1e-4);
+        assert_close(
+            "loss",
+            &[out.loss],
+            &[train["loss"].as_f64().expect("loss") as f32],
+            1e-5,
+        );
+        for entry in &net.params.entries {
+            let want = floats(&train["grads"][&entry.name]);
+            assert_close(
+                &format!("grad {}", entry.name),
+                entry.slot.of(&net.grads),
+                &want,
+                1e-4,
+            );
+        }
+        for entry in &net.running.entries {
+            let want = floats(&train["running_after"][&entry.name]);
+            assert_close(&entry.name, entry.slot.of(&net.running.values), &want, 1e-5);
+        }
     }
 }
