@@ -3,6 +3,7 @@
 //! reported), 2 a usage error.
 
 mod bench;
+mod learn;
 mod scans;
 
 use std::path::PathBuf;
@@ -10,6 +11,8 @@ use std::process::ExitCode;
 
 use clap::{Args, Parser, Subcommand};
 
+use partsift::learn::DEFAULT_HOLDOUT;
+use partsift::net::{Arch, Preset};
 use partsift::prep::RecipeSettings;
 use partsift::scan::Units;
 
@@ -18,8 +21,7 @@ use partsift::scan::Units;
     name = "partsift",
     version,
     about = "Sorts scanned parts by type. With no command, opens the desktop app.",
-    after_help = "The verdict supports, and does not replace, the plant's inspection procedures, \
-                  gauges and sign-off. Verdicts marked `review` go to a person."
+    after_help = learn::CAUTION
 )]
 struct Cli {
     #[command(subcommand)]
@@ -83,6 +85,74 @@ enum Command {
     },
     /// Measure training and inference speed, one-scan latency, peak memory and matrix-product rates.
     Bench(bench::BenchArgs),
+    /// Teach a model on a parts bin (one sub-folder of scans per part type) and save it.
+    ///
+    /// Progress goes to standard error; Ctrl-C stops after the current batch and keeps the
+    /// best model so far. Exit code 1 when some scans could not be read (they are skipped;
+    /// the model is still saved).
+    Train {
+        /// The parts bin: BIN/<part type>/<scan>.ply|.xyz|.pcd
+        bin: PathBuf,
+        /// The model file to write (.safetensors).
+        #[arg(short, long, value_name = "MODEL")]
+        output: PathBuf,
+        /// quick (minutes on a laptop) or full (the paper's network, slower).
+        #[arg(long, default_value = "quick")]
+        preset: Preset,
+        /// edgeconv, pointnet or gcn.
+        #[arg(long, default_value = "edgeconv")]
+        arch: Arch,
+        /// Most epochs (training stops earlier when holdout accuracy stops improving).
+        #[arg(long)]
+        epochs: Option<usize>,
+        /// Seed of the split, the weights and the augmentation: the same seed, bin and thread
+        /// count give the same model file.
+        #[arg(long, default_value_t = 1)]
+        seed: u64,
+        /// Share of each part type's scans held out to pick and calibrate the model.
+        #[arg(long, default_value_t = DEFAULT_HOLDOUT)]
+        holdout: f64,
+        /// Worker threads (default: one per core).
+        #[arg(long, value_parser = clap::value_parser!(u16).range(1..))]
+        threads: Option<u16>,
+        /// Print one JSON object as the last line: model, part_types, epochs, holdout_accuracy, seconds.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Give every scan a verdict: part type, calibrated confidence, sure or review.
+    ///
+    /// Folders are searched recursively for .ply, .xyz and .pcd files. A bad file is reported
+    /// and the rest go on (exit code 1).
+    Classify {
+        /// Scan files and folders of scans.
+        #[arg(required = true, value_name = "SCAN_OR_DIR")]
+        scans: Vec<PathBuf>,
+        /// The model file.
+        #[arg(short, long)]
+        model: PathBuf,
+        /// One JSON object per scan per line.
+        #[arg(long, conflicts_with = "csv")]
+        json: bool,
+        /// CSV with a header line, the scores of every part type in the last columns.
+        #[arg(long)]
+        csv: bool,
+        /// Copy (never move) each scan into DIR/<type>/, the ones to review into
+        /// DIR/_to-review/<type>/; existing files are never overwritten.
+        #[arg(long, value_name = "DIR")]
+        copy_to: Option<PathBuf>,
+    },
+    /// Measure how well a model sorts a labelled parts bin: accuracy, per-type precision,
+    /// recall and F1, the confusion matrix, the misclassified scans.
+    Evaluate {
+        /// The parts bin: BIN/<part type>/<scan>.ply|.xyz|.pcd
+        bin: PathBuf,
+        /// The model file.
+        #[arg(short, long)]
+        model: PathBuf,
+        /// Print one JSON object.
+        #[arg(long)]
+        json: bool,
+    },
 }
 
 /// How to read scan files.
@@ -178,6 +248,42 @@ pub fn main() -> ExitCode {
             resolution,
         }) => scans::synth(&out_dir, per_type, seed, [resolution[0], resolution[1]]),
         Some(Command::Bench(args)) => bench::bench(args),
+        Some(Command::Train {
+            bin,
+            output,
+            preset,
+            arch,
+            epochs,
+            seed,
+            holdout,
+            threads,
+            json,
+        }) => learn::train_command(learn::TrainArgs {
+            bin,
+            output,
+            preset,
+            arch,
+            epochs,
+            seed,
+            holdout,
+            threads: threads.map(usize::from),
+            json,
+        }),
+        Some(Command::Classify {
+            scans,
+            model,
+            json,
+            csv,
+            copy_to,
+        }) => {
+            let format = match (json, csv) {
+                (true, _) => learn::RowFormat::Json,
+                (_, true) => learn::RowFormat::Csv,
+                _ => learn::RowFormat::Human,
+            };
+            learn::classify_command(&scans, &model, format, copy_to.as_deref())
+        }
+        Some(Command::Evaluate { bin, model, json }) => learn::evaluate_command(&bin, &model, json),
     };
     match outcome {
         Outcome::Ok => ExitCode::SUCCESS,

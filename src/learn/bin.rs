@@ -302,7 +302,7 @@ impl MoveRecord {
     }
 }
 
-fn is_plain_visible_name(name: &str) -> bool {
+pub(crate) fn is_plain_visible_name(name: &str) -> bool {
     let mut components = Path::new(name).components();
     matches!(
         (components.next(), components.next()),
@@ -313,7 +313,7 @@ fn is_plain_visible_name(name: &str) -> bool {
 
 /// Moves `file` into `folder` (created if missing) under its own name or the first free
 /// `stem-N.ext`.
-fn move_into(file: &Path, folder: &Path) -> Result<MoveRecord, BinError> {
+pub(crate) fn move_into(file: &Path, folder: &Path) -> Result<MoveRecord, BinError> {
     let failed = |to: &Path, source| BinError::Move {
         from: file.to_path_buf(),
         to: to.to_path_buf(),

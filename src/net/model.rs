@@ -7,6 +7,7 @@ use crate::net::batch::Batch;
 use crate::net::fast::trunk::FastTrunkCache;
 use crate::net::fast::{self, Kernels};
 use crate::net::head::{DropoutMasks, Head, SIZE_VALUES};
+use crate::net::layers::batch_norm::MOMENTUM as BATCH_NORM_MOMENTUM;
 use crate::net::loss::{cross_entropy_backward, cross_entropy_forward};
 use crate::net::params::{Builder, Pass, Running, Store, TensorEntry};
 use crate::net::trunk::{Trunk, TrunkCache};
@@ -361,6 +362,50 @@ impl Network {
         BatchOutput {
             loss,
             logits: logits.data,
+        }
+    }
+
+    /// Sets every batch-norm running statistic to its mean over `batches` (each a `points`,
+    /// `size` pair of `B >= 2` samples, shaped as for [`Network::train_batch`]), weighted by
+    /// the batches' sizes: forward passes in training mode without dropout and without
+    /// gradients, as PyTorch's cumulative average (`momentum=None`) gives. Nothing else
+    /// changes, and an empty list changes nothing.
+    ///
+    /// Run over clean training scans after an epoch, this gives evaluation mode statistics
+    /// without the extra variance dropout adds in training, the "variance shift" of Li et al.
+    /// 2019 ("Understanding the Disharmony between Dropout and Batch Normalization"), which
+    /// early in training sends every scan to one class.
+    ///
+    /// Panics as [`Network::train_batch`] (`B >= 2`, shapes).
+    pub fn refresh_running_statistics(&mut self, batches: &[(&[f32], &[f32])]) {
+        let mut sum = vec![0.0f64; self.running.values.len()];
+        let mut samples = 0usize;
+        for &(points, size) in batches {
+            let (points, size) = self.inputs(points, size);
+            assert!(points.samples >= 2, "batch norm needs two samples");
+            let count = points.samples;
+            let Network {
+                model,
+                params,
+                running,
+                ..
+            } = self;
+            // From zero, one update leaves exactly momentum x this batch's statistics.
+            running.values.fill(0.0);
+            let mut pass = Pass {
+                params: &params.values,
+                running: Running::Update(&mut running.values),
+            };
+            model.forward(&mut pass, points, &size, None);
+            for (s, &r) in sum.iter_mut().zip(&running.values) {
+                *s += count as f64 * r as f64 / BATCH_NORM_MOMENTUM as f64;
+            }
+            samples += count;
+        }
+        if samples > 0 {
+            for (r, s) in self.running.values.iter_mut().zip(&sum) {
+                *r = (s / samples as f64) as f32;
+            }
         }
     }
 
