@@ -79,10 +79,6 @@ pub(crate) struct Judgement {
 pub(crate) enum InspectEvent {
     Shown(Result<ScanShown, AppError>),
     CleanedUp(Result<Cleanup, AppError>),
-    #[cfg_attr(
-        not(test),
-        expect(dead_code, reason = "sent by backend.rs once the network is wired in")
-    )]
     Judged(Result<Judgement, AppError>),
 }
 
@@ -497,5 +493,8 @@ impl InspectTab {
     }
     pub(crate) fn is_working(&self) -> bool {
         self.worker.is_some()
+    }
+    pub(crate) fn judgement(&self) -> Option<&Judgement> {
+        self.judgement.as_ref()
     }
 }

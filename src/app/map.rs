@@ -218,6 +218,9 @@ impl MapTab {
     pub(crate) fn has_data(&self) -> bool {
         self.data.is_some()
     }
+    pub(crate) fn data(&self) -> Option<&MapData> {
+        self.data.as_ref()
+    }
 }
 
 #[cfg(test)]

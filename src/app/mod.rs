@@ -138,8 +138,17 @@ pub(crate) enum AppError {
     Recipe(String),
     #[error("{path}: a file of that name is already there; nothing was moved")]
     Exists { path: PathBuf },
-    #[error("{what} is not part of this build yet")]
-    NotInThisBuild { what: &'static str },
+    #[error("{0}")]
+    Settings(String),
+    /// Teaching, checking a model on a bin or mapping it.
+    #[error("{0}")]
+    Learn(String),
+    /// Reading or writing a model file (the message names the file).
+    #[error("{0}")]
+    Model(String),
+    /// A scan that got no verdict (the message names the file).
+    #[error("{0}")]
+    Verdict(String),
     #[error("the background work stopped unexpectedly ({0}); please report this")]
     Crashed(String),
 }

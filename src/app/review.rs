@@ -701,6 +701,9 @@ impl ReviewTab {
     pub(crate) fn listed(&self) -> usize {
         self.cell_cases().len()
     }
+    pub(crate) fn evaluation_shown(&self) -> Option<&Evaluation> {
+        self.evaluation.as_ref()
+    }
 }
 
 #[cfg(test)]

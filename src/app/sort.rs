@@ -13,8 +13,11 @@ use super::worker::{poll_slot, JobEvent, Reporter, Worker};
 use super::{palette, short_path, Action, AppError, Notice, Shared};
 use partsift::fsutil::write_atomic;
 
-/// Sub-folder of the output folder for scans whose verdict is `review`.
-const REVIEW_FOLDER: &str = "needs-review";
+// The sub-folder for scans whose verdict is `review`: the same as the command line's.
+use partsift::learn::REVIEW_FOLDER;
+
+/// Scans classified together before their rows are shown.
+const CLASSIFY_CHUNK: usize = 8;
 
 /// One scan of the folder and what became of it.
 pub(crate) struct SortRow {
@@ -134,13 +137,17 @@ impl SortTab {
                 }
             };
             r.send(SortEvent::Found(files.len()));
-            for path in files {
+            // A few files at a time, in parallel: rows appear as they come, both cores busy.
+            for chunk in files.chunks(CLASSIFY_CHUNK) {
                 if r.is_cancelled() {
                     break;
                 }
-                let outcome = backend::classify(&path, &model);
-                if !r.send(SortEvent::Row(SortRow { path, outcome })) {
-                    return;
+                let outcomes = backend::classify(chunk, &model, r);
+                for (path, outcome) in chunk.iter().zip(outcomes) {
+                    let path = path.clone();
+                    if !r.send(SortEvent::Row(SortRow { path, outcome })) {
+                        return;
+                    }
                 }
             }
             r.send(SortEvent::Finished(Ok(())));
@@ -698,7 +705,7 @@ mod tests {
         assert_eq!(summary.failed.len(), 1, "{:?}", summary.failed);
         assert_eq!(std::fs::read(out.join("bracket/a.ply")).unwrap(), b"a.ply");
         assert_eq!(
-            std::fs::read(out.join("needs-review/bracket/b.ply")).unwrap(),
+            std::fs::read(out.join(REVIEW_FOLDER).join("bracket/b.ply")).unwrap(),
             b"b.ply"
         );
         assert_eq!(std::fs::read(out.join("washer/c.ply")).unwrap(), b"older");

@@ -98,21 +98,10 @@ pub(crate) struct EpochStats {
 /// What the train loop sends.
 pub(crate) enum TeachEvent {
     /// How far the whole run is, 0..1, and what it is doing ("epoch 3 of 40").
-    #[cfg_attr(
-        not(test),
-        expect(
-            dead_code,
-            reason = "sent by backend.rs once the train loop is wired in"
-        )
-    )]
-    Progress { fraction: f32, doing: String },
-    #[cfg_attr(
-        not(test),
-        expect(
-            dead_code,
-            reason = "sent by backend.rs once the train loop is wired in"
-        )
-    )]
+    Progress {
+        fraction: f32,
+        doing: String,
+    },
     Epoch(EpochStats),
     /// The run ended: the model (the best so far if stopped), or why not.
     Finished(Result<Taught, AppError>),
@@ -120,7 +109,8 @@ pub(crate) enum TeachEvent {
 
 /// A finished run.
 pub(crate) struct Taught {
-    pub(crate) model: LoadedModel,
+    /// Boxed: a model is large beside the other events.
+    pub(crate) model: Box<LoadedModel>,
     /// How the model does on the holdout scans, for Review.
     pub(crate) evaluation: Option<Evaluation>,
     /// True when Stop ended it early.
@@ -234,7 +224,7 @@ impl TeachTab {
                     "{note}: {}",
                     taught.model.name
                 ))));
-                let model = Arc::new(taught.model);
+                let model = Arc::from(taught.model);
                 if let Some(path) = save_when_done.take() {
                     *saving = spawn_save(ctx, Arc::clone(&model), path, error);
                 }
@@ -601,6 +591,12 @@ impl TeachTab {
     }
     pub(crate) fn is_running(&self) -> bool {
         self.worker.is_some()
+    }
+    pub(crate) fn settings_mut(&mut self) -> &mut TeachSettings {
+        &mut self.settings
+    }
+    pub(crate) fn error(&self) -> Option<&str> {
+        self.error.as_deref()
     }
 }
 

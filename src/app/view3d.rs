@@ -359,13 +359,6 @@ impl Cloud3d {
 
     /// Adds each point's influence on the verdict, 0..1 (clamped; NaN shows as "no value");
     /// ignored unless there is one per point.
-    #[cfg_attr(
-        not(test),
-        expect(
-            dead_code,
-            reason = "called in backend.rs once the network is wired in"
-        )
-    )]
     pub(crate) fn with_influence(mut self, influence: Vec<f32>) -> Self {
         if influence.len() == self.points.positions.len() {
             self.influence = Some(influence);

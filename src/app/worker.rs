@@ -6,10 +6,10 @@
 
 use eframe::egui;
 use std::any::Any;
-use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::mpsc::{self, Receiver, Sender, TryRecvError};
-use std::sync::Arc;
 use std::thread::JoinHandle;
+
+use partsift::learn::CancelToken;
 
 use super::AppError;
 
@@ -21,7 +21,7 @@ const REPAINT_WITHIN: std::time::Duration = std::time::Duration::from_millis(50)
 pub(crate) struct Reporter<E> {
     events: Sender<E>,
     ctx: egui::Context,
-    cancel: Arc<AtomicBool>,
+    cancel: CancelToken,
 }
 
 impl<E> Reporter<E> {
@@ -36,7 +36,12 @@ impl<E> Reporter<E> {
 
     /// True once the UI asked the job to stop (Stop button, or the worker was dropped).
     pub(crate) fn is_cancelled(&self) -> bool {
-        self.cancel.load(Ordering::Relaxed)
+        self.cancel.is_cancelled()
+    }
+
+    /// The same stop request as [`Reporter::is_cancelled`], for library calls that take one.
+    pub(crate) fn cancel_token(&self) -> &CancelToken {
+        &self.cancel
     }
 }
 
@@ -52,7 +57,7 @@ pub(crate) enum Ended {
 /// The UI's side of one running job.
 pub(crate) struct Worker<E> {
     events: Receiver<E>,
-    cancel: Arc<AtomicBool>,
+    cancel: CancelToken,
     thread: Option<JoinHandle<()>>,
 }
 
@@ -65,11 +70,11 @@ impl<E: Send + 'static> Worker<E> {
         job: impl FnOnce(&Reporter<E>) + Send + 'static,
     ) -> std::io::Result<Self> {
         let (tx, rx) = mpsc::channel();
-        let cancel = Arc::new(AtomicBool::new(false));
+        let cancel = CancelToken::new();
         let reporter = Reporter {
             events: tx,
             ctx: ctx.clone(),
-            cancel: Arc::clone(&cancel),
+            cancel: cancel.clone(),
         };
         let thread = std::thread::Builder::new()
             .name(format!("partsift {name}"))
@@ -109,12 +114,12 @@ impl<E> Worker<E> {
 
     /// Asks the job to stop; it finishes at its next check of [`Reporter::is_cancelled`].
     pub(crate) fn cancel(&self) {
-        self.cancel.store(true, Ordering::Relaxed);
+        self.cancel.cancel();
     }
 
     /// True once [`Worker::cancel`] was called.
     pub(crate) fn is_cancelling(&self) -> bool {
-        self.cancel.load(Ordering::Relaxed)
+        self.cancel.is_cancelled()
     }
 }
 

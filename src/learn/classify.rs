@@ -56,7 +56,15 @@ impl TrainedModel {
     ///
     /// Errors: the clean-up finds no usable point, or the network's scores are not finite.
     pub fn inspect(&self, cloud_mm: &PointCloud) -> Result<Inspection, InspectError> {
-        let prepared = self.recipe().run(cloud_mm)?;
+        self.judge(self.recipe().run(cloud_mm)?)
+    }
+
+    /// The calibrated verdict on a scan already cleaned with [`TrainedModel::recipe`] (so a
+    /// caller can show the clean-up before the verdict). Deterministic.
+    ///
+    /// Errors: `prepared` does not have the network's number of points (another recipe), or
+    /// the network's scores are not finite.
+    pub fn judge(&self, prepared: Prepared) -> Result<Inspection, InspectError> {
         let (points, size) = self.network_input(&prepared)?;
         let logits = self.network().infer(&points, &size);
         let verdict = Verdict::from_logits(&logits, self.part_types(), self.calibration())?;

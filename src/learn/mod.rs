@@ -11,13 +11,15 @@
 //!   [`train_on`] (a [`Dataset`] already prepared) gives a [`TrainRun`]: the [`TrainedModel`]
 //!   (best on holdout, calibrated), its holdout outcomes and the scans skipped;
 //! - the model: [`TrainedModel::save`] and [`TrainedModel::open`] (one model file),
-//!   [`TrainedModel::inspect`] (one cloud: the prepared scan and its verdict) with
+//!   [`TrainedModel::inspect`] (one cloud: the prepared scan and its verdict; [`TrainedModel::judge`]
+//!   on a cloud already cleaned) with
 //!   [`TrainedModel::saliency`] and [`values_on_input`] (which points drove it),
 //!   [`TrainedModel::classify_file`] and [`TrainedModel::classify_files`] (rows of
 //!   `partsift classify`; [`find_scan_files`] walks folders, [`copy_sorted`] copies scans into
 //!   per-type folders), [`evaluate`] / [`evaluate_on`]
 //!   (an [`EvaluationRun`]: every scan's outcome and the [`Evaluation`]) and
-//!   [`TrainedModel::embed`] (features of every scan, for a 2D map);
+//!   [`TrainedModel::embed`] (features of every scan) and [`feature_map`] (those features on
+//!   two axes, with the likely mislabelled scans marked);
 //! - [`Dataset`]: a bin's scans read and cleaned once, in parallel, through the cache.
 //!
 //! and the parts of the train loop: [`holdout_split`] (stratified, seeded), [`Augmentation`] of a
@@ -32,6 +34,7 @@ mod calibrate;
 mod classify;
 mod dataset;
 mod evaluate;
+mod map;
 mod metrics;
 mod model;
 mod progress;
@@ -54,6 +57,7 @@ pub use classify::{
 };
 pub use dataset::{Dataset, DatasetError, SkippedScan};
 pub use evaluate::{evaluate, evaluate_on, EvaluateError, EvaluationRun};
+pub use map::{feature_map, MapPoint, MAP_NEIGHBOURS};
 pub use metrics::{
     ConfusionMatrix, Evaluation, LabelOutOfRange, Metrics, Misclassified, ScanOutcome, TypeScores,
 };

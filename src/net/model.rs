@@ -47,7 +47,7 @@ pub struct UnknownChoice {
 
 impl Arch {
     pub const ALL: [Arch; 3] = [Arch::EdgeConv, Arch::PointNet, Arch::Gcn];
-    const NAMES: [&'static str; 3] = ["edgeconv", "pointnet", "gcn"];
+    pub const NAMES: [&'static str; 3] = ["edgeconv", "pointnet", "gcn"];
 
     /// The name on the command line and in the model file.
     pub fn name(self) -> &'static str {
@@ -57,7 +57,7 @@ impl Arch {
 
 impl Preset {
     pub const ALL: [Preset; 2] = [Preset::Quick, Preset::Full];
-    const NAMES: [&'static str; 2] = ["quick", "full"];
+    pub const NAMES: [&'static str; 2] = ["quick", "full"];
 
     pub fn name(self) -> &'static str {
         Self::NAMES[self as usize]
