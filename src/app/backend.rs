@@ -24,7 +24,7 @@ use super::AppError;
 
 /// A model ready to use: the trained network with its recipe and calibration, and what the
 /// tabs show of it.
-#[derive(Debug)]
+#[derive(Clone, Debug)]
 pub(crate) struct LoadedModel {
     /// Shown in the status bar: the file name, or "taught on <bin>" for an unsaved model.
     pub(crate) name: String,
@@ -362,7 +362,6 @@ pub(crate) fn teach(
             train_loss,
             train_accuracy,
             holdout_accuracy,
-            eta_seconds,
             ..
         } => {
             report.send(TeachEvent::Epoch(EpochStats {
@@ -374,10 +373,7 @@ pub(crate) fn teach(
             report.send(TeachEvent::Progress {
                 fraction: PREPARE_SHARE
                     + (1.0 - PREPARE_SHARE) * epoch as f32 / epochs.max(1) as f32,
-                doing: format!(
-                    "epoch {epoch} of {epochs}, about {} left",
-                    duration_words(eta_seconds)
-                ),
+                doing: format!("epoch {epoch} of {epochs}"),
             });
         }
         TrainEvent::EarlyStop { epoch } => {
@@ -418,15 +414,6 @@ pub(crate) fn teach(
         evaluation: Some(evaluation),
         stopped,
     })
-}
-
-/// "3 min", "40 s".
-fn duration_words(seconds: f32) -> String {
-    if seconds >= 90.0 {
-        format!("{:.0} min", seconds / 60.0)
-    } else {
-        format!("{:.0} s", seconds.max(0.0))
-    }
 }
 
 /// Reads a model file.

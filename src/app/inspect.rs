@@ -384,9 +384,15 @@ fn verdict_panel(
     egui::CollapsingHeader::new("Clean-up report")
         .default_open(true)
         .show(ui, |ui| {
-            for line in &cleanup.report {
-                ui.label(egui::RichText::new(line).monospace());
-            }
+            // The report's columns line up only unwrapped: scroll sideways for long notes.
+            egui::ScrollArea::horizontal().show(ui, |ui| {
+                for line in &cleanup.report {
+                    ui.add(
+                        egui::Label::new(egui::RichText::new(line).monospace().small())
+                            .wrap_mode(egui::TextWrapMode::Extend),
+                    );
+                }
+            });
         });
 }
 

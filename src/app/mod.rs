@@ -303,12 +303,16 @@ impl App {
             .bin
             .or_else(|| app.last_bin.clone())
             .or_else(default_bin);
-        if let Some(model) = options.model.or_else(|| app.last_model.clone()) {
+        let first_model = eframe::storage_dir(APP_ID).map(|d| d.join("first-model.safetensors"));
+        let saved = options
+            .model
+            .or_else(|| app.last_model.clone())
+            .or_else(|| first_model.clone().filter(|f| f.is_file()));
+        if let Some(model) = saved {
             app.open_model(&cc.egui_ctx, model);
         } else if let Some(bin) = &bin {
             // First start: teach a model on the bin in the background; the app is usable meanwhile.
-            let save_to = eframe::storage_dir(APP_ID).map(|d| d.join("first-model.safetensors"));
-            app.teach.start(&cc.egui_ctx, bin, save_to);
+            app.teach.start(&cc.egui_ctx, bin, first_model);
         }
         if let Some(bin) = bin {
             app.use_bin(&cc.egui_ctx, bin);
@@ -413,7 +417,15 @@ impl App {
                     self.inspect.model_changed(ctx, self.session.model.as_ref());
                 }
                 Action::OpenModel(path) => self.open_model(ctx, path),
-                Action::ModelSaved(path) => self.last_model = Some(path),
+                Action::ModelSaved(path) => {
+                    // The model in use now has a file: name it by that file.
+                    if let Some(model) = &self.session.model {
+                        let mut named = LoadedModel::clone(model);
+                        named.name = inspect::file_name(&path);
+                        self.session.model = Some(Arc::new(named));
+                    }
+                    self.last_model = Some(path);
+                }
                 Action::Evaluated(evaluation) => self.review.set_evaluation(evaluation),
                 Action::Notice(n) => self.notify(n),
             }

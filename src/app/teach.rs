@@ -530,6 +530,8 @@ fn curves(ui: &mut egui::Ui, epochs: &[EpochStats]) {
         .include_y(100.0)
         .x_axis_label("epoch")
         .y_axis_formatter(|mark, _| format!("{:.0} %", mark.value))
+        // Room for "100 %".
+        .y_axis_min_width(44.0)
         .legend(Legend::default())
         .allow_scroll(false)
         .show(ui, |plot| {

@@ -349,8 +349,21 @@ impl Cloud3d {
     }
 
     /// Adds what the recipe did with each point; ignored unless there is one per point.
+    /// The view then frames, and colours by height, the part alone: a far stray point
+    /// would otherwise shrink the part to a few pixels.
     pub(crate) fn with_kinds(mut self, kinds: Vec<PointKind>) -> Self {
         if kinds.len() == self.points.positions.len() {
+            let part: Vec<[f32; 3]> = self
+                .points
+                .positions
+                .iter()
+                .zip(&kinds)
+                .filter(|(_, k)| **k == PointKind::Part)
+                .map(|(p, _)| *p)
+                .collect();
+            if let Some(bounds) = PointCloud::from_positions(part).bounds() {
+                self.bounds = Some(bounds);
+            }
             self.kinds = Some(kinds);
             self.id = next_cloud_id();
         }
