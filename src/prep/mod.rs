@@ -5,8 +5,9 @@
 //! radius, table normal +Z, with the part's [`PartSize`] in mm, the [`Fate`] of every input
 //! point and a [`Report`] of each step's numbers. The steps, each in its own file:
 //! 1. drop non-finite points, optional crop box (here);
-//! 2. table plane: RANSAC, refit to the measured range noise, tests that it is the table
-//!    and not a face of the part, level the cloud (`plane.rs`);
+//! 2. table plane: RANSAC, moved to a parallel plane behind it if there is one, refit to
+//!    the measured range noise, tests that it is the table and not a face of the part,
+//!    level the cloud (`plane.rs`);
 //! 3. stray points: statistical outlier removal (`strays.rs`);
 //! 4. keep the part: the largest Euclidean cluster, with nearby pieces of it joined
 //!    (`cluster.rs`);

@@ -186,7 +186,8 @@ const MOST_UNDER_PART: f64 = 0.75;
 /// `min_fraction` of the points, has the scan's origin (the sensor, in a camera-frame scan)
 /// not behind it, has (nearly) nothing beyond it on the side away from the rest, and does
 /// not lie mostly under what stands on it (see [`share_under_part`]). The last three reject
-/// faces of the part.
+/// faces of the part. Each plane found first moves to a parallel plane behind it where
+/// there is one (see [`plane_behind`]).
 pub(crate) fn find_table(points: &[[f32; 3]], settings: &TableSearchSettings) -> TableSearch {
     let min_inliers = (settings.min_fraction as f64 * points.len() as f64).ceil() as usize;
     let mut candidates: Vec<[f32; 3]> = points.to_vec();
@@ -210,17 +211,40 @@ pub(crate) fn find_table(points: &[[f32; 3]], settings: &TableSearchSettings) ->
             failures.push(why);
             break;
         }
-        let plane = part_side_up(points, plane, settings.ransac_threshold_mm);
-        let (plane, threshold_mm) = if settings.adapt_to_noise {
-            fit_to_noise(
-                points,
-                plane,
-                settings.ransac_threshold_mm,
-                0.5 * settings.spacing_mm,
-            )
-        } else {
-            (plane, settings.ransac_threshold_mm)
+        let fit = |plane: Plane| {
+            let plane = part_side_up(points, plane, settings.ransac_threshold_mm);
+            if settings.adapt_to_noise {
+                fit_to_noise(
+                    points,
+                    plane,
+                    settings.ransac_threshold_mm,
+                    0.5 * settings.spacing_mm,
+                )
+            } else {
+                (plane, settings.ransac_threshold_mm)
+            }
         };
+        // First behind the RANSAC band (a noise fit on a plane tilted across a face and the
+        // table measures both, and its band hides the table behind), then behind the band
+        // fitted to the noise.
+        let (mut plane, mut threshold_mm) = (plane, settings.ransac_threshold_mm);
+        let mut fitted = false;
+        for _move in 0..=MOST_MOVES_BEHIND {
+            // Counted in its fitted band: a RANSAC band thinner than the noise (a dense
+            // scan) holds only part of a table.
+            let moved = plane_behind(points, &plane, threshold_mm, settings, min_inliers, seed)
+                .map(&fit)
+                .filter(|(p, t)| count_within(points, p, *t) >= min_inliers);
+            match moved {
+                Some(m) => (plane, threshold_mm) = m,
+                None if fitted => break,
+                None => (plane, threshold_mm) = fit(plane),
+            }
+            fitted = true;
+        }
+        if !fitted {
+            (plane, threshold_mm) = fit(plane);
+        }
         let below = points
             .iter()
             .filter(|&&p| plane.signed_distance(p) < -threshold_mm)
@@ -276,38 +300,96 @@ pub(crate) fn find_table(points: &[[f32; 3]], settings: &TableSearchSettings) ->
     TableSearch::NotFound(failures.join("; next, "))
 }
 
-/// The table distance fitted to the range noise: 3 robust standard deviations (1.4826 x the
-/// median absolute residual, the normal-consistent MAD: common practice, no source), at
-/// least `floor_mm`. Measured on the points just *below* the plane only: nothing real is
-/// there, while above it the foot of the part would pass for noise. The window starts at
-/// 3 x `start_mm` and is set again from the first estimate, so a noise larger than the first
-/// guess is still measured. `plane`'s normal must point to the part.
-fn noise_threshold(points: &[[f32; 3]], plane: &Plane, start_mm: f32, floor_mm: f32) -> f32 {
-    let mut threshold = start_mm;
-    let mut residuals: Vec<f32> = Vec::with_capacity(points.len() / 2);
-    for _round in 0..2 {
-        let window = 3.0 * threshold;
-        residuals.clear();
-        residuals.extend(
-            points
-                .iter()
-                .map(|&p| -plane.signed_distance(p))
-                .filter(|&d| d > 0.0 && d <= window),
-        );
-        if residuals.is_empty() {
-            break;
-        }
-        let mid = residuals.len() / 2;
-        let (_, median, _) = residuals.select_nth_unstable_by(mid, f32::total_cmp);
-        threshold = floor_mm.max(3.0 * 1.4826 * *median);
+/// Moves to a plane behind at most this many times: each move goes farther from the sensor.
+const MOST_MOVES_BEHIND: usize = 3;
+/// A plane behind is parallel enough to be the table under a face within this angle (cosine
+/// of 20°): a face tilted across the face and the table is a few degrees off; a wall of the
+/// part is far more.
+const PARALLEL_COS: f32 = 0.94;
+
+/// A table holds the part up to the sensor, so nothing but noise lies behind it. When a
+/// plane has a plane of its own behind it (on the side away from the scan's origin, the
+/// sensor in a camera-frame scan), nearly parallel and large enough for a table
+/// (`min_inliers`), that one is nearer the table: the first was a face of the part (a
+/// washer's top) or a plane tilted across a face and the table. Returns it (RANSAC on the
+/// points behind), or `None`. A plane through the origin has no behind.
+fn plane_behind(
+    points: &[[f32; 3]],
+    plane: &Plane,
+    threshold_mm: f32,
+    settings: &TableSearchSettings,
+    min_inliers: usize,
+    seed: u64,
+) -> Option<Plane> {
+    let origin_side = plane.offset_mm;
+    if origin_side.abs() <= threshold_mm {
+        return None;
     }
-    threshold
+    let behind: Vec<[f32; 3]> = points
+        .iter()
+        .copied()
+        .filter(|&p| plane.signed_distance(p) * origin_side.signum() < -threshold_mm)
+        .collect();
+    if behind.len() < min_inliers.max(3) {
+        return None;
+    }
+    let (found, _) = ransac_plane(
+        &behind,
+        settings.ransac_threshold_mm,
+        settings.iterations,
+        seed,
+    )?;
+    (dot(found.normal, plane.normal).abs() >= PARALLEL_COS).then_some(found)
 }
 
-/// Alternately measures the noise ([`noise_threshold`]) and refits the plane to the points
-/// within 2 standard deviations of it, three times: the RANSAC distance may be far from the
-/// noise, and a refit on too wide a band leans on the foot of the part. Keeps the normal's
-/// side. Returns the plane and the final distance.
+/// Points within `threshold_mm` of `plane`.
+fn count_within(points: &[[f32; 3]], plane: &Plane, threshold_mm: f32) -> usize {
+    points
+        .iter()
+        .filter(|&&p| plane.signed_distance(p).abs() <= threshold_mm)
+        .count()
+}
+
+/// One estimate of the table distance from the range noise: 3 robust standard deviations
+/// (1.4826 x the median absolute residual, the normal-consistent MAD: common practice, no
+/// source), at least `floor_mm`, of the points within `window_mm` *below* the plane: nothing
+/// real is there, while above it the foot of the part would pass for noise. `None` if no
+/// point is in the window. `plane`'s normal must point to the part.
+fn noise_estimate(
+    points: &[[f32; 3]],
+    plane: &Plane,
+    window_mm: f32,
+    floor_mm: f32,
+    residuals: &mut Vec<f32>,
+) -> Option<f32> {
+    residuals.clear();
+    residuals.extend(
+        points
+            .iter()
+            .map(|&p| -plane.signed_distance(p))
+            .filter(|&d| d > 0.0 && d <= window_mm),
+    );
+    if residuals.is_empty() {
+        return None;
+    }
+    let mid = residuals.len() / 2;
+    let (_, median, _) = residuals.select_nth_unstable_by(mid, f32::total_cmp);
+    Some(floor_mm.max(3.0 * 1.4826 * *median))
+}
+
+/// A measured table distance is trusted to grow by at most this factor when measured again
+/// in a window 3 times as wide. Gaussian noise gives back the same figure (the window holds
+/// 9 standard deviations); residuals spread evenly over the window (a plane tilted across a
+/// face of the part and the table, its far half a slab of points) give 6.7 times it, and
+/// then every round again: a runaway, not noise.
+const MOST_GROWTH: f32 = 2.0;
+
+/// Alternately measures the noise ([`noise_estimate`], twice: in a window of 3 x the RANSAC
+/// distance, then of 3 x the first estimate, so a noise larger than the first guess is
+/// still measured) and refits the plane to the points within 2 standard deviations of it,
+/// three times: the RANSAC distance may be far from the noise, and a refit on too wide a
+/// band leans on the foot of the part. Stops at the last estimate when a new one grows more
+/// than [`MOST_GROWTH`] times. Keeps the normal's side. Returns the plane and the distance.
 fn fit_to_noise(
     points: &[[f32; 3]],
     mut plane: Plane,
@@ -315,12 +397,27 @@ fn fit_to_noise(
     floor_mm: f32,
 ) -> (Plane, f32) {
     let mut threshold = start_mm;
-    for _round in 0..3 {
-        threshold = noise_threshold(points, &plane, threshold, floor_mm);
-        // Refit on 2 sigma, not the 3 of the table distance: less of the part's foot.
-        plane = refit(points, plane, threshold * (2.0 / 3.0));
+    let mut measured = false;
+    let mut residuals: Vec<f32> = Vec::with_capacity(points.len() / 2);
+    for round in 0..4 {
+        for _estimate in 0..2 {
+            let Some(estimate) =
+                noise_estimate(points, &plane, 3.0 * threshold, floor_mm, &mut residuals)
+            else {
+                break;
+            };
+            if measured && estimate > MOST_GROWTH * threshold {
+                return (plane, threshold);
+            }
+            threshold = estimate;
+            measured = true;
+        }
+        if round < 3 {
+            // Refit on 2 sigma, not the 3 of the table distance: less of the part's foot.
+            plane = refit(points, plane, threshold * (2.0 / 3.0));
+        }
     }
-    (plane, noise_threshold(points, &plane, threshold, floor_mm))
+    (plane, threshold)
 }
 
 /// The least-squares plane of the points within `threshold_mm` of `plane`, normal on the
@@ -616,6 +713,137 @@ mod tests {
             TableSearch::NotFound(why) => assert!(why.contains("cut through"), "{why}"),
             TableSearch::Found(t) => panic!("{t:?}"),
         }
+    }
+
+    /// Sensor at the origin looking down -z: a table at z = -100 (a 120 mm square) and on
+    /// it a thin disc (radius 40 mm, 1.5 mm thick) holding more points than the table
+    /// around it, range noise 0.1 mm.
+    fn disc_on_table(rng: &mut Rng) -> Vec<[f32; 3]> {
+        let mut pts = Vec::new();
+        while pts.len() < 4000 {
+            let (x, y) = (rng.range(-60.0, 60.0), rng.range(-60.0, 60.0));
+            if x * x + y * y > 40.0 * 40.0 {
+                pts.push([x as f32, y as f32, (-100.0 + 0.1 * rng.normal()) as f32]);
+            }
+        }
+        while pts.len() < 10000 {
+            let (x, y) = (rng.range(-40.0, 40.0), rng.range(-40.0, 40.0));
+            if x * x + y * y <= 40.0 * 40.0 {
+                pts.push([x as f32, y as f32, (-98.5 + 0.1 * rng.normal()) as f32]);
+            }
+        }
+        pts
+    }
+
+    #[test]
+    fn the_plane_behind_a_disc_top_is_the_table() {
+        let mut rng = Rng::new(10);
+        let pts = disc_on_table(&mut rng);
+        let disc_top = Plane {
+            normal: [0.0, 0.0, 1.0],
+            offset_mm: 98.5,
+        };
+        let behind = plane_behind(&pts, &disc_top, 0.3, &settings(0.3, 1.0), 1000, 1)
+            .expect("the table behind the disc");
+        assert_close_plane(&behind, &known_table(), 0.5, 0.2);
+        // Nothing but noise behind the table itself.
+        assert_eq!(
+            plane_behind(&pts, &known_table(), 0.3, &settings(0.3, 1.0), 1000, 1),
+            None
+        );
+    }
+
+    fn known_table() -> Plane {
+        Plane {
+            normal: [0.0, 0.0, 1.0],
+            offset_mm: 100.0,
+        }
+    }
+
+    #[test]
+    fn a_thin_disc_on_the_table_is_kept_off_it() {
+        // End to end: whichever plane is found first, the table comes out, with the disc
+        // above its band.
+        let mut rng = Rng::new(11);
+        let pts = disc_on_table(&mut rng);
+        let TableSearch::Found(t) = find_table(&pts, &settings(0.3, 1.0)) else {
+            panic!("no table")
+        };
+        assert_close_plane(&t.plane, &known_table(), 0.2, 0.1);
+        let disc_on_table_band = pts[4000..]
+            .iter()
+            .filter(|&&p| t.plane.signed_distance(p) <= t.threshold_mm)
+            .count();
+        assert_eq!(disc_on_table_band, 0, "{t:?}");
+    }
+
+    /// Sensor at the origin looking down -z: a table at z = -100 (120 x 80 mm, points 1 mm
+    /// apart on average, noise 0.15 mm) with a plate 3 mm thick on it (40 x 40 mm), as an
+    /// angle bracket's flange lying on the table within a few RANSAC distances of it.
+    fn plate_on_table(rng: &mut Rng) -> Vec<[f32; 3]> {
+        let on_plate = |x: f64, y: f64| (0.0..40.0).contains(&x) && y.abs() < 20.0;
+        let mut pts = Vec::new();
+        while pts.len() < 8000 {
+            let (x, y) = (rng.range(-60.0, 60.0), rng.range(-40.0, 40.0));
+            let z = if on_plate(x, y) { -97.0 } else { -100.0 };
+            pts.push([x as f32, y as f32, (z + 0.15 * rng.normal()) as f32]);
+        }
+        pts
+    }
+
+    #[test]
+    fn the_plane_behind_a_plane_tilted_across_plate_and_table_is_the_table() {
+        let mut rng = Rng::new(13);
+        let pts = plate_on_table(&mut rng);
+        // Through the table at x = -60 and the plate's top at x = 40: 1.7° off.
+        let n = [-0.03f32, 0.0, 1.0];
+        let len = norm(n);
+        let tilted = Plane {
+            normal: n.map(|c| c / len),
+            offset_mm: 98.2 / len,
+        };
+        let behind = plane_behind(&pts, &tilted, 1.0, &settings(1.0, 1.0), 800, 1)
+            .expect("the table behind the tilted plane");
+        assert_close_plane(&behind, &known_table(), 0.5, 0.3);
+    }
+
+    #[test]
+    fn a_plate_on_the_table_is_kept_off_it() {
+        let mut rng = Rng::new(14);
+        let pts = plate_on_table(&mut rng);
+        let TableSearch::Found(t) = find_table(&pts, &settings(1.0, 1.0)) else {
+            panic!("no table")
+        };
+        assert_close_plane(&t.plane, &known_table(), 0.2, 0.1);
+        let plate_in_table_band = pts
+            .iter()
+            .filter(|p| p[2] > -98.5 && t.plane.signed_distance(**p) <= t.threshold_mm)
+            .count();
+        assert_eq!(plate_in_table_band, 0, "{t:?}");
+    }
+
+    #[test]
+    fn the_noise_fit_does_not_run_away_over_a_slab_below() {
+        // A plane z = 0 with noise 0.1 mm over a dense slab of points 0.6 to 40 mm below it,
+        // as below a plane tilted across a face of the part and the table: each wider
+        // window finds more of the slab, so each estimate would be several times the last.
+        let mut rng = Rng::new(12);
+        let mut pts: Vec<[f32; 3]> = (0..1000)
+            .map(|_| {
+                let (x, y) = (rng.range(-50.0, 50.0), rng.range(-50.0, 50.0));
+                [x as f32, y as f32, (0.1 * rng.normal()) as f32]
+            })
+            .collect();
+        pts.extend((0..20000).map(|_| {
+            let (x, y) = (rng.range(-50.0, 50.0), rng.range(-50.0, 50.0));
+            [x as f32, y as f32, rng.range(-40.0, -0.6) as f32]
+        }));
+        let plane = Plane {
+            normal: [0.0, 0.0, 1.0],
+            offset_mm: 0.0,
+        };
+        let (_, threshold) = fit_to_noise(&pts, plane, 1.0, 0.05);
+        assert!(threshold < 10.0, "{threshold}");
     }
 
     #[test]
