@@ -208,11 +208,12 @@ fn cleanup_view(cloud_mm: &PointCloud, prepared: &Prepared) -> Cleanup {
             extents_mm: prepared.size.extents_mm,
             radius_mm: radius,
         },
-        report: prepared
+        report: prepared.report.steps(),
+        warnings: prepared
             .report
-            .to_string()
-            .lines()
-            .map(str::to_string)
+            .warnings
+            .iter()
+            .map(|w| w.to_string())
             .collect(),
         levelled: Some(Cloud3d::new(PointCloud::from_positions(positions)).with_kinds(kinds)),
     }

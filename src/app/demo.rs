@@ -8,6 +8,7 @@ use super::inspect::{Cleanup, Judgement, ScanShown, Status, TrueSize, Verdict};
 use super::map::{MapData, MapDot};
 use super::review::{Case, Evaluation, TypeScores};
 use super::view3d::{Cloud3d, PointKind};
+use partsift::prep::StepLine;
 use partsift::rng::Rng;
 use partsift::scan::PointCloud;
 
@@ -139,26 +140,23 @@ pub(crate) fn inspect_result(n: usize) -> (ScanShown, Cleanup, Judgement) {
             extents_mm: [44.1, 43.8, 30.2],
             radius_mm: 27.4,
         },
-        report: vec![
-            format!("points read      {n}"),
-            "not a number     0".into(),
-            format!(
-                "table plane      {} off (fit 0.21 mm rms)",
-                kinds.iter().filter(|k| **k == PointKind::Table).count()
-            ),
-            format!(
-                "stray points     {} off",
-                kinds.iter().filter(|k| **k == PointKind::Stray).count()
-            ),
-            format!(
-                "other clusters   {} off (1 cluster)",
-                kinds
-                    .iter()
-                    .filter(|k| **k == PointKind::OtherCluster)
-                    .count()
-            ),
-            format!("part             {part_count} kept -> 2048 evenly spaced"),
-        ],
+        report: {
+            let count = |kind| kinds.iter().filter(|k| **k == kind).count();
+            let line = |step, points, note: &str| StepLine {
+                step,
+                points,
+                note: note.to_owned(),
+            };
+            vec![
+                line("input points", n, "spacing 0.210 mm"),
+                line("non-finite", 0, ""),
+                line("table plane", count(PointKind::Table), "within 0.63 mm"),
+                line("strays", count(PointKind::Stray), ""),
+                line("other objects", count(PointKind::OtherCluster), "1 cluster"),
+                line("kept", part_count, "2048 evenly spaced"),
+            ]
+        },
+        warnings: Vec::new(),
         levelled: Some(Cloud3d::new(PointCloud::from_positions(positions)).with_kinds(kinds)),
     };
     (shown, cleanup, judgement)

@@ -11,6 +11,7 @@ use super::backend::{self, LoadedModel};
 use super::view3d::{Camera, Cloud3d, ColourBy, PointView};
 use super::worker::{poll_slot, Worker};
 use super::{palette, Action, AppError, Keys, Shared, CAUTION};
+use partsift::prep::StepLine;
 
 /// Whether a verdict can stand on its own.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -57,8 +58,10 @@ pub(crate) struct ScanShown {
 /// What the clean-up recipe made of a scan.
 pub(crate) struct Cleanup {
     pub(crate) size: TrueSize,
-    /// The clean-up report: what was removed and why, one line per step.
-    pub(crate) report: Vec<String>,
+    /// The clean-up report: what each step removed and why.
+    pub(crate) report: Vec<StepLine>,
+    /// What the user should know (no table found, maybe two parts in one scan, ...).
+    pub(crate) warnings: Vec<String>,
     /// The whole scan turned into the recipe's frame (table at Z = 0, part up), with what
     /// clean-up did with each point. Replaces the cloud as read when present.
     pub(crate) levelled: Option<Cloud3d>,
@@ -384,15 +387,20 @@ fn verdict_panel(
     egui::CollapsingHeader::new("Clean-up report")
         .default_open(true)
         .show(ui, |ui| {
-            // The report's columns line up only unwrapped: scroll sideways for long notes.
-            egui::ScrollArea::horizontal().show(ui, |ui| {
-                for line in &cleanup.report {
-                    ui.add(
-                        egui::Label::new(egui::RichText::new(line).monospace().small())
-                            .wrap_mode(egui::TextWrapMode::Extend),
-                    );
+            for warning in &cleanup.warnings {
+                ui.colored_label(palette::review_colour(), warning);
+            }
+            for line in &cleanup.report {
+                ui.horizontal(|ui| {
+                    ui.strong(line.step);
+                    ui.with_layout(egui::Layout::right_to_left(egui::Align::Center), |ui| {
+                        ui.monospace(line.points.to_string());
+                    });
+                });
+                if !line.note.is_empty() {
+                    ui.small(&line.note);
                 }
-            });
+            }
         });
 }
 

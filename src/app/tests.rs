@@ -141,7 +141,12 @@ fn review_verdict_is_shown_with_the_caution() {
                 extents_mm: [50.0, 50.0, 30.0],
                 radius_mm: 29.0,
             },
-            report: vec!["table plane: 600 points off".into()],
+            report: vec![partsift::prep::StepLine {
+                step: "table plane",
+                points: 600,
+                note: String::new(),
+            }],
+            warnings: vec!["a second object of 90 points beside the part".into()],
             levelled: None,
         })));
         r.send(InspectEvent::Judged(Ok(Judgement {
@@ -164,6 +169,8 @@ fn review_verdict_is_shown_with_the_caution() {
     h.get_by_label(CAUTION);
     h.get_by_label("confidence 41 %");
     h.get_by_label_contains("50.0 × 50.0 × 30.0 mm");
+    h.get_by_label("a second object of 90 points beside the part");
+    h.get_by_label("table plane");
 }
 
 #[test]

@@ -1246,8 +1246,18 @@ pub(crate) mod tests {
     }
 
     #[test]
+    fn a_cloud_with_kinds_is_framed_on_its_part() {
+        let points = vec![[0.0, 0.0, 0.0], [10.0, 5.0, 4.0], [900.0, 0.0, 300.0]];
+        let kinds = vec![PointKind::Part, PointKind::Part, PointKind::Stray];
+        let cloud = Cloud3d::new(PointCloud::from_positions(points)).with_kinds(kinds);
+        assert_eq!(cloud.bounds(), Some([[0.0, 0.0, 0.0], [10.0, 5.0, 4.0]]));
+        assert_eq!(cloud.len(), 3, "the stray is still drawn");
+    }
+
+    #[test]
     fn a_moving_camera_draws_a_sample_then_every_point_at_rest() {
-        let cloud = practice_cloud(200_000, 5);
+        // Without kinds the view frames every point, so each frame at rest draws them all.
+        let cloud = Cloud3d::new(practice_cloud(200_000, 5).points);
         let ctx = egui::Context::default();
         let settings = ViewSettings::default();
         let mut camera = Camera::default();
@@ -1277,7 +1287,7 @@ pub(crate) mod tests {
     /// asserted in tests). Run with `--nocapture` to see it.
     #[test]
     fn mesh_for_200k_points() {
-        let cloud = practice_cloud(200_000, 7);
+        let cloud = Cloud3d::new(practice_cloud(200_000, 7).points);
         let rect = view_rect();
         let mut camera = Camera::default();
         camera.frame(cloud.bounds().unwrap(), rect.aspect_ratio());

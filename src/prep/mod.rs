@@ -31,7 +31,7 @@ mod strays;
 
 pub use density::voxel_centroids;
 pub use plane::{ransac_plane, Plane};
-pub use report::{Counts, PlaneReport, Report, Warning};
+pub use report::{Counts, PlaneReport, Report, StepLine, Warning};
 pub use sample::farthest_point_sample;
 pub use settings::{Recipe, RecipeError, RecipeSettings};
 pub use size::PartSize;

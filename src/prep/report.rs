@@ -102,20 +102,21 @@ pub struct Report {
     pub warnings: Vec<Warning>,
 }
 
-impl fmt::Display for Report {
-    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+/// One line of the report: a step of the recipe, how many points it concerns (the input's
+/// count, the points a step removed, or the points kept) and what it found.
+#[derive(Clone, Debug, PartialEq)]
+pub struct StepLine {
+    pub step: &'static str,
+    pub points: usize,
+    pub note: String,
+}
+
+impl Report {
+    /// The report's lines in the recipe's order: the input, each step with the points it
+    /// removed, and the points kept.
+    pub fn steps(&self) -> Vec<StepLine> {
         let c = &self.counts;
-        let row = |f: &mut fmt::Formatter<'_>, step: &str, removed: usize, note: String| {
-            writeln!(f, "  {step:<15} {removed:>9}  {note}")
-        };
-        writeln!(
-            f,
-            "  {:<15} {:>9}  spacing {:.3} mm",
-            "input points", c.input, self.scan_spacing_mm
-        )?;
-        writeln!(f, "  {:<15} {:>9}", "step", "removed")?;
-        row(f, "non-finite", c.non_finite, String::new())?;
-        row(f, "crop box", c.cropped, String::new())?;
+        let line = |step, points, note: String| StepLine { step, points, note };
         let table_note = match &self.plane {
             PlaneReport::Found {
                 normal,
@@ -130,37 +131,59 @@ impl fmt::Display for Report {
             PlaneReport::NotFound { .. } => "none found".into(),
             PlaneReport::Off => "not looked for".into(),
         };
-        row(f, "table plane", c.table, table_note)?;
-        row(
-            f,
-            "strays",
-            c.strays,
-            format!("mean neighbour distance over {:.3} mm", self.stray_limit_mm),
-        )?;
-        row(
-            f,
-            "other objects",
-            c.other_clusters,
-            format!(
-                "{} clusters at {:.3} mm ({} joined to the part), second largest {} points",
-                self.clusters, self.cluster_radius_mm, self.joined_clusters, self.second_cluster
+        vec![
+            line(
+                "input points",
+                c.input,
+                format!("spacing {:.3} mm", self.scan_spacing_mm),
             ),
-        )?;
-        writeln!(
-            f,
-            "  {:<15} {:>9}  part spacing {:.3} mm; {} voxels of {:.3} mm{}; {} padded",
-            "kept",
-            c.kept,
-            self.part_spacing_mm,
-            c.voxels,
-            self.voxel_mm,
-            if self.voxel_grid_skipped {
-                " (too few: skipped)"
-            } else {
-                ""
-            },
-            c.padded
-        )?;
+            line("non-finite", c.non_finite, String::new()),
+            line("crop box", c.cropped, String::new()),
+            line("table plane", c.table, table_note),
+            line(
+                "strays",
+                c.strays,
+                format!("mean neighbour distance over {:.3} mm", self.stray_limit_mm),
+            ),
+            line(
+                "other objects",
+                c.other_clusters,
+                format!(
+                    "{} clusters at {:.3} mm ({} joined to the part), second largest {} points",
+                    self.clusters,
+                    self.cluster_radius_mm,
+                    self.joined_clusters,
+                    self.second_cluster
+                ),
+            ),
+            line(
+                "kept",
+                c.kept,
+                format!(
+                    "part spacing {:.3} mm; {} voxels of {:.3} mm{}; {} padded",
+                    self.part_spacing_mm,
+                    c.voxels,
+                    self.voxel_mm,
+                    if self.voxel_grid_skipped {
+                        " (too few: skipped)"
+                    } else {
+                        ""
+                    },
+                    c.padded
+                ),
+            ),
+        ]
+    }
+}
+
+impl fmt::Display for Report {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        for (k, line) in self.steps().iter().enumerate() {
+            writeln!(f, "  {:<15} {:>9}  {}", line.step, line.points, line.note)?;
+            if k == 0 {
+                writeln!(f, "  {:<15} {:>9}", "step", "removed")?;
+            }
+        }
         let [a, b, h] = self.size.extents_mm;
         writeln!(
             f,
