@@ -318,9 +318,17 @@ pub(crate) fn inspect_scan(
     report.send(InspectEvent::Judged(judged));
 }
 
-/// One scan's points in mm, for Review's side-by-side views.
+/// One scan for Review's side-by-side views: levelled by the default clean-up with each
+/// point's fate (so both scans stand on their table, framed on the part), or as read (mm)
+/// when the clean-up finds nothing to keep.
 pub(crate) fn load_cloud(path: &Path) -> Result<Cloud3d, AppError> {
-    Ok(Cloud3d::new(read_scan(path)?.cloud_mm()))
+    let cloud_mm = read_scan(path)?.cloud_mm();
+    let cleaned = RecipeSettings::default()
+        .check()
+        .ok()
+        .and_then(|recipe| recipe.run(&cloud_mm).ok())
+        .and_then(|prepared| cleanup_view(&cloud_mm, &prepared).levelled);
+    Ok(cleaned.unwrap_or_else(|| Cloud3d::new(cloud_mm)))
 }
 
 /// A folder's name for messages: its last component, or the whole path.

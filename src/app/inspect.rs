@@ -221,6 +221,8 @@ impl InspectTab {
         egui::Panel::right("inspect verdict")
             .resizable(true)
             .default_size(340.0)
+            // The verdict and the review block must stay readable at a glance.
+            .min_size(300.0)
             .show(ui, |ui| {
                 egui::ScrollArea::vertical().show(ui, |ui| {
                     let stage = match (worker.is_some(), shown.is_some(), cleanup.is_some()) {

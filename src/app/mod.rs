@@ -687,6 +687,8 @@ fn default_bin() -> Option<PathBuf> {
     ]
     .into_iter()
     .find(|p| p.is_dir())
+    // Remembered for the next start, which may run from another folder.
+    .map(|p| std::fs::canonicalize(&p).unwrap_or(p))
 }
 
 /// The last two components of a path: enough to recognise it in a status line.

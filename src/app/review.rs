@@ -225,9 +225,11 @@ impl ReviewTab {
         };
         let mut clicked_cell = None;
         let mut picked = None;
+        // Wide enough for the whole matrix (a name column and one cell per type) where it fits.
+        let matrix_width = 150.0 + 50.0 * evaluation.part_types.len() as f32;
         egui::Panel::left("review matrix")
             .resizable(true)
-            .default_size(520.0)
+            .default_size(matrix_width.clamp(420.0, 760.0))
             .show(ui, |ui| {
                 egui::ScrollArea::both().show(ui, |ui| {
                     ui.heading("Confusion matrix");

@@ -28,6 +28,10 @@ const SCAN_EXTENSIONS: [&str; 3] = ["ply", "xyz", "pcd"];
 /// they use 1 (recalled from memory).
 const SALIENCY_ALPHA: i32 = 1;
 
+/// The percentile of the positive saliency scores that maps to 1 (our choice, no source: the
+/// picture's contrast).
+const SALIENCY_FULL_SCALE_QUANTILE: usize = 95;
+
 /// One scan as the model saw it, and what it made of it.
 #[derive(Clone, Debug)]
 pub struct Inspection {
@@ -81,7 +85,7 @@ impl TrainedModel {
     }
 
     /// Which prepared points drove the score of part type `class`: one value per point of
-    /// `inspection.prepared.points`, in [0, 1] (1 for the strongest). The score of Zheng et
+    /// `inspection.prepared.points`, in [0, 1] (1 for the strongest twentieth). The score of Zheng et
     /// al. 2019 ("PointCloud Saliency Maps"): `r^2 dS/dr`, the gain in the class score `S`
     /// from moving a point out from the centre, times its distance `r` from the centre
     /// squared; points that argue against the class get 0. One backward pass through the
@@ -103,10 +107,19 @@ impl TrainedModel {
                 score.max(0.0)
             })
             .collect();
-        let top = scores.iter().fold(0.0f32, |m, &s| m.max(s));
+        // Scaled so the top twentieth of the points that argue for the class read 1: scaled
+        // by the single largest, a few outliers would leave every other point near 0.
+        let mut positive: Vec<f32> = scores.iter().copied().filter(|&s| s > 0.0).collect();
+        let top = if positive.is_empty() {
+            0.0
+        } else {
+            let at = (positive.len() * SALIENCY_FULL_SCALE_QUANTILE) / 100;
+            let at = at.min(positive.len() - 1);
+            *positive.select_nth_unstable_by(at, f32::total_cmp).1
+        };
         if top > 0.0 && top.is_finite() {
             for s in &mut scores {
-                *s /= top;
+                *s = (*s / top).min(1.0);
             }
         } else {
             scores.fill(0.0);
