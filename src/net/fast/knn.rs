@@ -5,14 +5,14 @@
 //! on the `gemm` crate, and each row keeps its `k` best by a threshold scan instead of a
 //! partial sort: a candidate is looked at only when it beats the current `k`-th best, which
 //! after the first few dozen candidates is rare (about `k ln(n / k)` insertions a row), and the
-//! comparison with the threshold runs over 16 candidates at a time.
+//! comparison with the threshold runs over [`LANES`] candidates at a time.
 //!
 //! Differences from `feature_knn`: NaN distances sort after every number (there a NaN of
 //! either sign could come anywhere), and the products' rounding differs, so distances equal to
 //! within about 1e-7 of the squared norms may be ordered the other way.
 
 use crate::net::fast::gemm::{matmul, MatMut, MatRef, Site, Threads};
-use crate::net::fast::simd::vectorised;
+use crate::net::fast::simd::{load, vectorised, LANES};
 
 /// Rows of the distance matrix per product. 64 rows of 1024 f32 distances are 256 KiB: the
 /// block stays in the second-level cache while its rows are scanned.
@@ -74,9 +74,6 @@ pub(crate) fn knn_rows(
     }
 }
 
-/// Candidates looked at together by the threshold test.
-const LANES: usize = 16;
-
 /// A candidate as one integer: the distance's bits above (non-negative floats and NaN order
 /// as their bit patterns read as unsigned), the index below; comparing two candidates
 /// compares distances, then indices.
@@ -102,6 +99,7 @@ vectorised! {
     /// Fills `neighbours` (`k` entries) for row `i`: itself, then the others nearest first.
     fn select_row(products: &[f32], norms: &[f32], i: usize, best: &mut Vec<u64>, neighbours: &mut [u32]) {
         let n = norms.len();
+        let products = &products[..n];
         let k = neighbours.len();
         let kept = k.min(n);
         // The `kept - 1` best others, sorted, as candidates.
@@ -119,25 +117,33 @@ vectorised! {
         if want > 0 {
             let mut threshold = (best[want - 1] >> 32) as u32;
             // Every candidate from here on has a larger index than those kept, so it enters
-            // exactly when its distance key is below the threshold's.
-            let mut keys = [0u32; LANES];
-            while j < n {
-                let end = (j + LANES).min(n);
-                let mut any = false;
-                for (t, slot) in keys.iter_mut().enumerate().take(end - j) {
-                    let key = key(norm_i, products[j + t], norms[j + t]);
-                    *slot = key;
-                    any |= key < threshold;
+            // exactly when its distance key is below the threshold's. The keys of a block
+            // are compared with the threshold at once, into a bit mask of the ones that enter.
+            let blocks = products[j..].chunks_exact(LANES).zip(norms[j..].chunks_exact(LANES));
+            for (p, nj) in blocks {
+                let (p, nj): ([f32; LANES], [f32; LANES]) = (load(p, 0), load(nj, 0));
+                let mut keys = [0u32; LANES];
+                let mut below = 0u32;
+                for t in 0..LANES {
+                    keys[t] = key(norm_i, p[t], nj[t]);
+                    below |= ((keys[t] < threshold) as u32) << t;
                 }
-                if any {
-                    for (t, &key) in keys.iter().enumerate().take(end - j) {
-                        if key < threshold && j + t != i {
-                            insert(best, candidate(key, j + t));
-                            threshold = (best[want - 1] >> 32) as u32;
-                        }
+                while below != 0 {
+                    let t = below.trailing_zeros() as usize;
+                    below &= below - 1;
+                    if keys[t] < threshold && j + t != i {
+                        insert(best, candidate(keys[t], j + t));
+                        threshold = (best[want - 1] >> 32) as u32;
                     }
                 }
-                j = end;
+                j += LANES;
+            }
+            for j in j..n {
+                let key = key(norm_i, products[j], norms[j]);
+                if key < threshold && j != i {
+                    insert(best, candidate(key, j));
+                    threshold = (best[want - 1] >> 32) as u32;
+                }
             }
         }
         for (t, slot) in neighbours.iter_mut().enumerate() {

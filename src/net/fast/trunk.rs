@@ -15,8 +15,8 @@ use rayon::prelude::*;
 
 use crate::net::batch::Batch;
 use crate::net::fast::edge::{
-    edge_input_grads, edge_moments, finish_edges, picks as scale_picks, scan_edges, winner_grads,
-    Affine, EdgeScratch, NormGrad, PICK_MAX,
+    edge_input_grads, edge_moments, finish_edges, scan_edges, signs, winner_grads, winner_values,
+    Affine, EdgeScratch, NormGrad,
 };
 use crate::net::fast::embed::{
     column_moments, embed_input_grads, embed_norm_sums, pool_tile, PoolGrad,
@@ -117,6 +117,8 @@ struct EdgeLayerCache {
     ab: Vec<f32>,
     /// Per point and channel, the neighbour slot that won the maximum.
     winners: Vec<u8>,
+    /// Per point and channel, the winning edge's value before batch norm.
+    y: Vec<f32>,
     norm: Normaliser,
 }
 
@@ -233,7 +235,7 @@ pub(crate) fn forward_with(
             (&joined[offsets[l - 1]..], width, layers[l - 1].outputs())
         };
         let given_layer = given.map(|g| (&g.neighbours[l][..], &g.edge_winners[l][..]));
-        let (mut cache, min_slot) = edge_scan(
+        let mut cache = edge_scan(
             layer,
             pass,
             input,
@@ -245,23 +247,10 @@ pub(crate) fn forward_with(
             given_layer.map(|g| g.0),
         );
         if let Some((_, winners)) = given_layer {
-            for (w, &g) in cache.winners.iter_mut().zip(winners) {
-                *w = g as u8;
-            }
+            use_winners(&mut cache, winners, layer, n, &tiles);
         }
         let out = &mut joined[offsets[l]..];
-        let picks = given_layer.map(|_| vec![PICK_MAX; layer.outputs()]);
-        edge_finish(
-            layer,
-            pass.params,
-            &mut cache,
-            &min_slot,
-            out,
-            width,
-            n,
-            &tiles,
-            picks,
-        );
+        edge_finish(layer, pass.params, &cache, out, width, &tiles);
         caches.push(cache);
     }
     let (pooled, mut embed_cache) = embed_forward(embed, pass, &joined, width, samples, n, &tiles);
@@ -279,9 +268,8 @@ pub(crate) fn forward_with(
     (pooled, cache)
 }
 
-/// An EdgeConv layer up to its batch statistics: neighbours, `[a b]`, the largest and
-/// smallest `b` per point and channel; returns the cache (its winners still the largest) and
-/// the smallest slots.
+/// An EdgeConv layer up to its batch statistics: neighbours, `[a b]`, the winning edge per
+/// point and channel and its value before batch norm.
 #[allow(clippy::too_many_arguments)]
 fn edge_scan(
     layer: &EdgeConv,
@@ -293,7 +281,7 @@ fn edge_scan(
     n: usize,
     tiles: &[Tile],
     given_neighbours: Option<&[u32]>,
-) -> (EdgeLayerCache, Vec<u8>) {
+) -> EdgeLayerCache {
     let (k, c) = (layer.k, layer.outputs());
     assert!(
         layer.linear.bias.is_none(),
@@ -329,20 +317,21 @@ fn edge_scan(
     );
 
     let training = matches!(pass.running, Running::Update(_));
-    let mut max_slot = vec![0u8; rows * c];
-    let mut min_slot = vec![0u8; rows * c];
+    let signs = signs(layer.norm.gamma.of(pass.params));
+    let mut winners = vec![0u8; rows * c];
+    let mut y = vec![0.0f32; rows * c];
     let mut partials = vec![0.0f64; if training { tiles.len() * 3 * c } else { 0 }];
     let mut stats: Vec<Option<&mut [f64]>> = if training {
         partials.chunks_exact_mut(3 * c).map(Some).collect()
     } else {
         tiles.iter().map(|_| None).collect()
     };
-    tile_chunks(&mut max_slot, c, tiles)
+    tile_chunks(&mut winners, c, tiles)
         .into_par_iter()
-        .zip(tile_chunks(&mut min_slot, c, tiles))
+        .zip(tile_chunks(&mut y, c, tiles))
         .zip(stats.par_iter_mut())
         .zip(tiles)
-        .for_each(|(((mx, mn), st), t)| {
+        .for_each(|(((ws, ys), st), t)| {
             let ab_s = &ab[t.sample * n * 2 * c..(t.sample + 1) * n * 2 * c];
             let nb_s = &neighbours[t.sample * n * k..(t.sample + 1) * n * k];
             with_scratch(|s| {
@@ -352,8 +341,9 @@ fn edge_scan(
                     c,
                     k,
                     t.first,
-                    mx,
-                    mn,
+                    &signs,
+                    ws,
+                    ys,
                     st.as_deref_mut(),
                     &mut s.edge,
                 )
@@ -363,14 +353,44 @@ fn edge_scan(
     let norm = layer.norm.normaliser(pass, rows * k, || {
         edge_moments(&sum_tiles(&partials, 3 * c), c, rows, k)
     });
-    let cache = EdgeLayerCache {
+    EdgeLayerCache {
         weights,
         neighbours,
         ab,
-        winners: max_slot,
+        winners,
+        y,
         norm,
-    };
-    (cache, min_slot)
+    }
+}
+
+/// Puts `given` winning slots (`B * N * C`) into the cache, and their edges' values.
+fn use_winners(
+    cache: &mut EdgeLayerCache,
+    given: &[u32],
+    layer: &EdgeConv,
+    n: usize,
+    tiles: &[Tile],
+) {
+    let (k, c) = (layer.k, layer.outputs());
+    for (w, &g) in cache.winners.iter_mut().zip(given) {
+        *w = g as u8;
+    }
+    let EdgeLayerCache {
+        ref neighbours,
+        ref ab,
+        ref winners,
+        ref mut y,
+        ..
+    } = *cache;
+    for ((ys, ws), t) in tile_chunks(y, c, tiles)
+        .into_iter()
+        .zip(tile_slices(winners, c, tiles))
+        .zip(tiles)
+    {
+        let ab_s = &ab[t.sample * n * 2 * c..(t.sample + 1) * n * 2 * c];
+        let nb_s = &neighbours[t.sample * n * k..(t.sample + 1) * n * k];
+        winner_values(ab_s, nb_s, c, k, t.first, ws, ys);
+    }
 }
 
 /// The `k` nearest neighbours of every point in its sample's feature space.
@@ -400,41 +420,21 @@ fn find_neighbours(
     neighbours
 }
 
-/// The layer's output into `out` (`width` values a row, starting at the layer's column) and
-/// its winners into the cache; each channel picks its winner by the sign of its scale
-/// unless `picks` says how.
-#[allow(clippy::too_many_arguments)]
+/// The layer's output into `out` (`width` values a row, starting at the layer's column).
 fn edge_finish(
     layer: &EdgeConv,
     params: &[f32],
-    cache: &mut EdgeLayerCache,
-    min_slot: &[u8],
+    cache: &EdgeLayerCache,
     out: &mut [f32],
     width: usize,
-    n: usize,
     tiles: &[Tile],
-    picks: Option<Vec<u8>>,
 ) {
-    let (k, c) = (layer.k, layer.outputs());
-    let EdgeLayerCache {
-        ref neighbours,
-        ref ab,
-        ref mut winners,
-        norm: ref normaliser,
-        ..
-    } = *cache;
-    let norm = affine(&layer.norm, params, normaliser, layer.act.slope);
-    let picks = picks.unwrap_or_else(|| scale_picks(norm.gamma));
-    tile_chunks(winners, c, tiles)
+    let c = layer.outputs();
+    let norm = affine(&layer.norm, params, &cache.norm, layer.act.slope);
+    tile_slices(&cache.y, c, tiles)
         .into_par_iter()
         .zip(row_chunks(out, width, tiles))
-        .zip(tile_slices(min_slot, c, tiles))
-        .zip(tiles)
-        .for_each(|(((ws, o), mn), t)| {
-            let ab_s = &ab[t.sample * n * 2 * c..(t.sample + 1) * n * 2 * c];
-            let nb_s = &neighbours[t.sample * n * k..(t.sample + 1) * n * k];
-            finish_edges(ab_s, nb_s, c, k, t.first, ws, mn, &picks, &norm, o, width);
-        });
+        .for_each(|(ys, o)| finish_edges(ys, c, &norm, o, width));
 }
 
 /// [`tile_chunks`] of a strided view that starts inside its first row (a column block of the
@@ -617,6 +617,7 @@ pub(crate) fn backward(
             neighbours,
             ab,
             winners,
+            y,
             norm: normaliser,
         } = &layer_cache;
 
@@ -626,25 +627,11 @@ pub(crate) fn backward(
         tile_chunks(&mut dab, 2 * c, &tiles)
             .into_par_iter()
             .zip(partials.par_chunks_exact_mut(2 * c))
-            .zip(tile_slices(winners, c, &tiles))
+            .zip(tile_slices(y, c, &tiles))
             .zip(&tiles)
-            .for_each(|(((d, sums), ws), t)| {
-                let ab_s = &ab[t.sample * n * 2 * c..(t.sample + 1) * n * 2 * c];
-                let nb_s = &neighbours[t.sample * n * k..(t.sample + 1) * n * k];
+            .for_each(|(((d, sums), ys), t)| {
                 let start = (t.sample * n + t.first) * width;
-                winner_grads(
-                    ab_s,
-                    nb_s,
-                    ws,
-                    c,
-                    k,
-                    t.first,
-                    &dout[start..],
-                    width,
-                    &norm,
-                    d,
-                    sums,
-                );
+                winner_grads(ys, c, &dout[start..], width, &norm, d, sums);
             });
         let sums = sum_tiles(&partials, 2 * c);
         let (dbeta, dgamma) = sums.split_at(c);
