@@ -22,7 +22,7 @@ use crate::net::fast::embed::{
     column_moments, embed_input_grads, embed_norm_sums, pool_tile, PoolGrad,
 };
 use crate::net::fast::gemm::{matmul, MatMut, MatRef, Site, Threads};
-use crate::net::fast::knn::{knn_rows, squared_norms, BLOCK_ROWS};
+use crate::net::fast::knn::{knn_rows, squared_norms, KnnScratch, BLOCK_ROWS};
 use crate::net::layers::batch_norm::{BatchNorm, Normaliser};
 use crate::net::layers::dense::Dense;
 use crate::net::layers::edge_conv::EdgeConv;
@@ -90,7 +90,7 @@ fn sum_tiles(partials: &[f64], len: usize) -> Vec<f64> {
 /// Per-thread scratch of the tile passes, kept across steps.
 #[derive(Default)]
 struct Scratch {
-    products: Vec<f32>,
+    knn: KnnScratch,
     edge: EdgeScratch,
 }
 
@@ -415,7 +415,7 @@ fn find_neighbours(
         .for_each(|(out, t)| {
             let x = &input[t.sample * n * stride..];
             let nr = &norms[t.sample * n..(t.sample + 1) * n];
-            with_scratch(|s| knn_rows(x, n, c_in, stride, nr, k, t.first, out, &mut s.products));
+            with_scratch(|s| knn_rows(x, n, c_in, stride, nr, k, t.first, out, &mut s.knn));
         });
     neighbours
 }
