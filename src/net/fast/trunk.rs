@@ -23,6 +23,7 @@ use crate::net::fast::embed::{
 };
 use crate::net::fast::gemm::{matmul, MatMut, MatRef, Site, Threads};
 use crate::net::fast::knn::{knn_rows, squared_norms, KnnScratch, BLOCK_ROWS};
+use crate::net::fast::spare::Spare;
 use crate::net::layers::batch_norm::{BatchNorm, Normaliser};
 use crate::net::layers::dense::Dense;
 use crate::net::layers::edge_conv::EdgeConv;
@@ -112,19 +113,19 @@ struct EdgeLayerCache {
     /// `[W_a - W_b; W_b]`, `2C x C_in`.
     weights: Vec<f32>,
     /// `k` per point, the point itself first.
-    neighbours: Vec<u32>,
+    neighbours: Spare<u32>,
     /// `[a b]` per point, `2C`.
-    ab: Vec<f32>,
+    ab: Spare<f32>,
     /// Per point and channel, the neighbour slot that won the maximum.
-    winners: Vec<u8>,
+    winners: Spare<u8>,
     /// Per point and channel, the winning edge's value before batch norm.
-    y: Vec<f32>,
+    y: Spare<f32>,
     norm: Normaliser,
 }
 
 struct EmbedCache {
     /// The linear part's output (`B * N x E`), batch norm's input.
-    y: Vec<f32>,
+    y: Spare<f32>,
     /// Per sample and channel, the point that won the max pooling.
     winners: Vec<u32>,
     norm: Normaliser,
@@ -136,7 +137,7 @@ pub(crate) struct FastTrunkCache {
     n: usize,
     points: Vec<f32>,
     /// Every EdgeConv layer's output side by side, `B * N x W` (the embedding's input).
-    joined: Vec<f32>,
+    joined: Spare<f32>,
     layers: Vec<EdgeLayerCache>,
     embed: EmbedCache,
 }
@@ -146,7 +147,7 @@ impl FastTrunkCache {
     #[cfg(test)]
     pub(crate) fn choices(&self) -> Choices {
         Choices {
-            neighbours: self.layers.iter().map(|l| l.neighbours.clone()).collect(),
+            neighbours: self.layers.iter().map(|l| l.neighbours.to_vec()).collect(),
             edge_winners: self
                 .layers
                 .iter()
@@ -226,7 +227,7 @@ pub(crate) fn forward_with(
     assert_eq!(points.cols, 3, "points are x y z");
     let (offsets, width) = offsets(layers);
     let tiles = tiles(samples, n);
-    let mut joined = vec![0.0f32; samples * n * width];
+    let mut joined = Spare::reused(samples * n * width);
     let mut caches = Vec::with_capacity(layers.len());
     for (l, layer) in layers.iter().enumerate() {
         let (input, stride, c_in): (&[f32], usize, usize) = if l == 0 {
@@ -291,7 +292,11 @@ fn edge_scan(
     let rows = samples * n;
 
     let neighbours = match given_neighbours {
-        Some(given) => given.to_vec(),
+        Some(given) => {
+            let mut copy = Spare::reused(given.len());
+            copy.copy_from_slice(given);
+            copy
+        }
         None => find_neighbours(input, stride, c_in, samples, n, k, tiles),
     };
 
@@ -306,7 +311,7 @@ fn edge_scan(
             weights[(c + ch) * c_in + t] = wb[t];
         }
     }
-    let mut ab = vec![0.0f32; rows * 2 * c];
+    let mut ab = Spare::reused(rows * 2 * c);
     matmul(
         Site::Forward,
         MatMut::new(&mut ab, rows, 2 * c, 2 * c),
@@ -318,8 +323,8 @@ fn edge_scan(
 
     let training = matches!(pass.running, Running::Update(_));
     let signs = signs(layer.norm.gamma.of(pass.params));
-    let mut winners = vec![0u8; rows * c];
-    let mut y = vec![0.0f32; rows * c];
+    let mut winners = Spare::reused(rows * c);
+    let mut y = Spare::reused(rows * c);
     let mut partials = vec![0.0f64; if training { tiles.len() * 3 * c } else { 0 }];
     let mut stats: Vec<Option<&mut [f64]>> = if training {
         partials.chunks_exact_mut(3 * c).map(Some).collect()
@@ -402,13 +407,13 @@ fn find_neighbours(
     n: usize,
     k: usize,
     tiles: &[Tile],
-) -> Vec<u32> {
-    let mut norms = vec![0.0f32; samples * n];
+) -> Spare<u32> {
+    let mut norms = Spare::reused(samples * n);
     norms
         .par_chunks_mut(n.max(1))
         .enumerate()
         .for_each(|(s, out)| squared_norms(&input[s * n * stride..], n, c_in, stride, out));
-    let mut neighbours = vec![0u32; samples * n * k];
+    let mut neighbours = Spare::reused(samples * n * k);
     tile_chunks(&mut neighbours, k, tiles)
         .into_par_iter()
         .zip(tiles)
@@ -473,7 +478,7 @@ fn embed_forward(
     );
     assert_eq!(embed.linear.inputs, width, "embedding input width");
     let rows = samples * n;
-    let mut y = vec![0.0f32; rows * e];
+    let mut y = Spare::reused(rows * e);
     matmul(
         Site::Forward,
         MatMut::new(&mut y, rows, e, e),
@@ -621,7 +626,7 @@ pub(crate) fn backward(
             norm: normaliser,
         } = &layer_cache;
 
-        let mut dab = vec![0.0f32; rows * 2 * c];
+        let mut dab = Spare::reused(rows * 2 * c);
         let mut partials = vec![0.0f64; tiles.len() * 2 * c];
         let dout = &djoined[offsets[l]..];
         tile_chunks(&mut dab, 2 * c, &tiles)
@@ -738,7 +743,7 @@ fn embed_backward(
     samples: usize,
     n: usize,
     tiles: &[Tile],
-) -> Vec<f32> {
+) -> Spare<f32> {
     let e = embed.outputs();
     assert_eq!(
         (dpooled.samples, dpooled.rows, dpooled.cols),
@@ -804,7 +809,7 @@ fn embed_backward(
             Threads::Pool,
         );
     }
-    let mut djoined = vec![0.0f32; rows * width];
+    let mut djoined = Spare::reused(rows * width);
     matmul(
         Site::InputGrad,
         MatMut::new(&mut djoined, rows, width, width),
