@@ -19,22 +19,39 @@ use crate::net::fast::simd::{load, vectorised, LANES};
 /// block stays in the second-level cache while its rows are scanned.
 pub(crate) const BLOCK_ROWS: usize = 64;
 
-/// Squared norm of each of the `n` rows of a `n x c` matrix with row stride `stride`.
-pub(crate) fn squared_norms(x: &[f32], n: usize, c: usize, stride: usize, out: &mut [f32]) {
-    assert_eq!(out.len(), n, "one norm per row");
-    for (i, o) in out.iter_mut().enumerate() {
-        *o = x[i * stride..i * stride + c].iter().map(|v| v * v).sum();
+/// Of the `n` rows of a `n x c` matrix with row stride `stride`: the squared norm of each
+/// into `norms`, and the transpose (`c x n`) into `columns`. The distance products take the
+/// cloud's features as the transpose: the `gemm` crate then reads them as they lie instead of
+/// gathering them with strides into its panels, once for every block of rows.
+pub(crate) fn norms_and_columns(
+    x: &[f32],
+    n: usize,
+    c: usize,
+    stride: usize,
+    norms: &mut [f32],
+    columns: &mut [f32],
+) {
+    assert_eq!(norms.len(), n, "one norm per row");
+    assert_eq!(columns.len(), n * c, "the transpose");
+    for (i, o) in norms.iter_mut().enumerate() {
+        let row = &x[i * stride..i * stride + c];
+        *o = row.iter().map(|v| v * v).sum();
+        for (t, &v) in row.iter().enumerate() {
+            columns[t * n + i] = v;
+        }
     }
 }
 
 /// Neighbours of rows `first..first + out.len() / k` of one cloud's features `x` (`n` rows
-/// of `c` values, `stride` apart), with their squared `norms`; `out` gets `k` indices a row.
+/// of `c` values, `stride` apart), with their squared `norms` and their transpose `columns`
+/// (from [`norms_and_columns`]); `out` gets `k` indices a row.
 /// `scratch` is grown as needed and may be reused.
 ///
 /// Panics if the shapes disagree or `n` does not fit in `u32`.
 #[allow(clippy::too_many_arguments)]
 pub(crate) fn knn_rows(
     x: &[f32],
+    columns: &[f32],
     n: usize,
     c: usize,
     stride: usize,
@@ -60,13 +77,13 @@ pub(crate) fn knn_rows(
     } = scratch;
     products.resize(rows * n, 0.0);
     candidates.resize(n, 0);
-    let all = MatRef::new(x, n, c, stride);
+    let all = MatRef::new(columns, c, n, n);
     let block = MatRef::new(&x[first * stride..], rows, c, stride);
     matmul(
         Site::Knn,
         MatMut::new(products, rows, n, n),
         block,
-        all.t(),
+        all,
         false,
         Threads::One,
     );
@@ -163,9 +180,23 @@ vectorised! {
             found.extend_from_slice(minima);
             let bound = *found.select_nth_unstable(want - 1).1;
             found.clear();
-            for (run, &least) in candidates.chunks(LANES).zip(minima) {
-                if least <= bound {
-                    found.extend(run.iter().filter(|&&c| c <= bound));
+            for (r, &least) in minima.iter().enumerate() {
+                if least > bound {
+                    continue;
+                }
+                let at = r * LANES;
+                if at + LANES <= candidates.len() {
+                    let run: [u64; LANES] = load(candidates, at);
+                    let mut within = 0u32;
+                    for (t, &c) in run.iter().enumerate() {
+                        within |= ((c <= bound) as u32) << t;
+                    }
+                    while within != 0 {
+                        found.push(run[within.trailing_zeros() as usize]);
+                        within &= within - 1;
+                    }
+                } else {
+                    found.extend(candidates[at..].iter().filter(|&&c| c <= bound));
                 }
             }
         } else {
@@ -186,12 +217,23 @@ mod tests {
     use crate::rng::Rng;
 
     fn knn(x: &[f32], n: usize, c: usize, k: usize) -> Vec<u32> {
-        let mut norms = vec![0.0; n];
-        squared_norms(x, n, c, c, &mut norms);
+        let (mut norms, mut columns) = (vec![0.0; n], vec![0.0; n * c]);
+        norms_and_columns(x, n, c, c, &mut norms, &mut columns);
         let mut out = vec![0; n * k];
         let mut scratch = KnnScratch::default();
         for (b, rows) in out.chunks_mut(BLOCK_ROWS * k).enumerate() {
-            knn_rows(x, n, c, c, &norms, k, b * BLOCK_ROWS, rows, &mut scratch);
+            knn_rows(
+                x,
+                &columns,
+                n,
+                c,
+                c,
+                &norms,
+                k,
+                b * BLOCK_ROWS,
+                rows,
+                &mut scratch,
+            );
         }
         out
     }

@@ -22,7 +22,7 @@ use crate::net::fast::embed::{
     column_moments, embed_input_grads, embed_norm_sums, pool_tile, PoolGrad,
 };
 use crate::net::fast::gemm::{matmul, MatMut, MatRef, Site, Threads};
-use crate::net::fast::knn::{knn_rows, squared_norms, KnnScratch, BLOCK_ROWS};
+use crate::net::fast::knn::{knn_rows, norms_and_columns, KnnScratch, BLOCK_ROWS};
 use crate::net::fast::spare::Spare;
 use crate::net::layers::batch_norm::{BatchNorm, Normaliser};
 use crate::net::layers::dense::Dense;
@@ -409,10 +409,14 @@ fn find_neighbours(
     tiles: &[Tile],
 ) -> Spare<u32> {
     let mut norms = Spare::reused(samples * n);
+    let mut columns = Spare::reused(samples * n * c_in);
     norms
         .par_chunks_mut(n.max(1))
+        .zip(columns.par_chunks_mut((n * c_in).max(1)))
         .enumerate()
-        .for_each(|(s, out)| squared_norms(&input[s * n * stride..], n, c_in, stride, out));
+        .for_each(|(s, (nr, cols))| {
+            norms_and_columns(&input[s * n * stride..], n, c_in, stride, nr, cols)
+        });
     let mut neighbours = Spare::reused(samples * n * k);
     tile_chunks(&mut neighbours, k, tiles)
         .into_par_iter()
@@ -420,7 +424,8 @@ fn find_neighbours(
         .for_each(|(out, t)| {
             let x = &input[t.sample * n * stride..];
             let nr = &norms[t.sample * n..(t.sample + 1) * n];
-            with_scratch(|s| knn_rows(x, n, c_in, stride, nr, k, t.first, out, &mut s.knn));
+            let cols = &columns[t.sample * n * c_in..(t.sample + 1) * n * c_in];
+            with_scratch(|s| knn_rows(x, cols, n, c_in, stride, nr, k, t.first, out, &mut s.knn));
         });
     neighbours
 }
