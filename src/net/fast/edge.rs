@@ -186,10 +186,13 @@ fn scan_block<const W: usize>(
             let d = v - bi[l];
             sum[l] += d;
             sum_sq[l] += d * d;
+            // Written as maxima rather than selects, which the compiler makes masked stores
+            // to memory that the next neighbour's load then waits for. The slot so far is
+            // below `t`, so its maximum with `t` (where `v` wins) or 0 is the select.
             let signed = sign[l] * v;
             let up = signed > best[l];
-            best[l] = if up { signed } else { best[l] };
-            slot[l] = if up { tf } else { slot[l] };
+            best[l] = best[l].max(signed);
+            slot[l] = slot[l].max(if up { tf } else { 0.0 });
         }
     }
     let mut won = [0u8; W];
