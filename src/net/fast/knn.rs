@@ -34,10 +34,15 @@ pub(crate) fn norms_and_columns(
     assert_eq!(norms.len(), n, "one norm per row");
     assert_eq!(columns.len(), n * c, "the transpose");
     for (i, o) in norms.iter_mut().enumerate() {
-        let row = &x[i * stride..i * stride + c];
-        *o = row.iter().map(|v| v * v).sum();
-        for (t, &v) in row.iter().enumerate() {
-            columns[t * n + i] = v;
+        *o = x[i * stride..i * stride + c].iter().map(|v| v * v).sum();
+    }
+    // Runs of rows at a time, so that each column is written in runs rather than one value.
+    for first in (0..n).step_by(LANES) {
+        let rows = LANES.min(n - first);
+        for (t, column) in columns.chunks_exact_mut(n).enumerate() {
+            for (r, v) in column[first..first + rows].iter_mut().enumerate() {
+                *v = x[(first + r) * stride + t];
+            }
         }
     }
 }
@@ -202,11 +207,9 @@ vectorised! {
         } else {
             found.extend_from_slice(candidates);
         }
-        if found.len() > want {
-            found.select_nth_unstable(want - 1);
-            found.truncate(want);
-        }
+        // Few more than wanted on the bound's path: sorting them all beats selecting first.
         found.sort_unstable();
+        found.truncate(want);
     }
 }
 
