@@ -45,7 +45,7 @@ pub(crate) struct BenchArgs {
     #[arg(long)]
     json: bool,
     /// Run one part only and print its figures as JSON (how the parent runs training in a
-    /// fresh process).
+    /// fresh process; `answer` alone is for profiling).
     #[arg(long, value_enum, hide = true)]
     stage: Option<Stage>,
 }
@@ -53,6 +53,7 @@ pub(crate) struct BenchArgs {
 #[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
 enum Stage {
     Train,
+    Answer,
 }
 
 impl BenchArgs {
@@ -86,6 +87,13 @@ pub(crate) fn bench(args: BenchArgs) -> Outcome {
     };
     pool.install(|| match args.stage {
         Some(Stage::Train) => match measure_training(&args.settings()) {
+            Ok(figures) => {
+                println!("{}", json!(figures));
+                Outcome::Ok
+            }
+            Err(e) => failed(&e.to_string()),
+        },
+        Some(Stage::Answer) => match measure_answering(&args.settings()) {
             Ok(figures) => {
                 println!("{}", json!(figures));
                 Outcome::Ok

@@ -11,6 +11,7 @@ vectorised! {
     /// Adds `[sum y, sum y^2]` per channel (2 `e` values, f64) over the rows of `y` (`e` a row).
     pub(crate) fn column_moments(y: &[f32], e: usize, sums: &mut [f64]) {
         let (s1, s2) = sums.split_at_mut(e);
+        let s2 = &mut s2[..e];
         for row in y.chunks_exact(e) {
             for ch in 0..e {
                 let v = row[ch] as f64;
@@ -18,6 +19,26 @@ vectorised! {
                 s2[ch] += v * v;
             }
         }
+    }
+}
+
+/// The layer's batch norm and LeakyReLU of `y` at channel `ch` (slices cut to the width, so
+/// that the loops over channels have no bounds checks).
+#[inline(always)]
+fn activation(y: f32, ch: usize, norm: &Affine<'_>) -> (f32, f32, f32) {
+    let x_hat = (y - norm.mean[ch]) * norm.inv_std[ch];
+    let z = norm.gamma[ch] * x_hat + norm.beta[ch];
+    (if z > 0.0 { z } else { norm.slope * z }, z, x_hat)
+}
+
+/// `norm` with every slice cut to `e` values.
+fn cut<'a>(norm: &Affine<'a>, e: usize) -> Affine<'a> {
+    Affine {
+        mean: &norm.mean[..e],
+        inv_std: &norm.inv_std[..e],
+        gamma: &norm.gamma[..e],
+        beta: &norm.beta[..e],
+        slope: norm.slope,
     }
 }
 
@@ -34,21 +55,24 @@ vectorised! {
         arg: &mut [u32],
         sum: &mut [f32],
     ) {
-        for (r, row) in y.chunks_exact(e).enumerate() {
-            let at = (first + r) as u32;
+        let norm = cut(norm, e);
+        let (max, arg, sum) = (&mut max[..e], &mut arg[..e], &mut sum[..e]);
+        let mut rows = y.chunks_exact(e);
+        let Some(row) = rows.next() else { return };
+        for ch in 0..e {
+            let a = activation(row[ch], ch, &norm).0;
+            max[ch] = a;
+            arg[ch] = first as u32;
+            sum[ch] = a;
+        }
+        for (r, row) in rows.enumerate() {
+            let at = (first + 1 + r) as u32;
             for ch in 0..e {
-                let z = norm.gamma[ch] * ((row[ch] - norm.mean[ch]) * norm.inv_std[ch]) + norm.beta[ch];
-                let a = if z > 0.0 { z } else { norm.slope * z };
-                if r == 0 {
-                    max[ch] = a;
-                    arg[ch] = at;
-                    sum[ch] = a;
-                } else {
-                    let up = a > max[ch];
-                    max[ch] = if up { a } else { max[ch] };
-                    arg[ch] = if up { at } else { arg[ch] };
-                    sum[ch] += a;
-                }
+                let a = activation(row[ch], ch, &norm).0;
+                let up = a > max[ch];
+                max[ch] = if up { a } else { max[ch] };
+                arg[ch] = if up { at } else { arg[ch] };
+                sum[ch] += a;
             }
         }
     }
@@ -62,11 +86,19 @@ pub(crate) struct PoolGrad<'a> {
     pub dmean: &'a [f32],
 }
 
+/// `pool` with every slice cut to `e` values.
+fn cut_pool<'a>(pool: &PoolGrad<'a>, e: usize) -> PoolGrad<'a> {
+    PoolGrad {
+        winners: &pool.winners[..e],
+        dmax: &pool.dmax[..e],
+        dmean: &pool.dmean[..e],
+    }
+}
+
 /// `dL/dz` at row `at`, channel `ch`, and the row's `x_hat`.
 #[inline(always)]
 fn dz_at(y: f32, at: u32, ch: usize, norm: &Affine<'_>, pool: &PoolGrad<'_>) -> (f32, f32) {
-    let x_hat = (y - norm.mean[ch]) * norm.inv_std[ch];
-    let z = norm.gamma[ch] * x_hat + norm.beta[ch];
+    let (_, z, x_hat) = activation(y, ch, norm);
     let dact = if pool.winners[ch] == at {
         pool.dmax[ch] + pool.dmean[ch]
     } else {
@@ -87,11 +119,13 @@ vectorised! {
         pool: &PoolGrad<'_>,
         sums: &mut [f64],
     ) {
+        let (norm, pool) = (cut(norm, e), cut_pool(pool, e));
         let (dbeta, dgamma) = sums.split_at_mut(e);
+        let dgamma = &mut dgamma[..e];
         for (r, row) in y.chunks_exact(e).enumerate() {
             let at = (first + r) as u32;
             for ch in 0..e {
-                let (dz, x_hat) = dz_at(row[ch], at, ch, norm, pool);
+                let (dz, x_hat) = dz_at(row[ch], at, ch, &norm, &pool);
                 dbeta[ch] += dz as f64;
                 dgamma[ch] += dz as f64 * x_hat as f64;
             }
@@ -109,11 +143,13 @@ vectorised! {
         pool: &PoolGrad<'_>,
         grad: &NormGrad<'_>,
     ) {
+        let (norm, pool) = (cut(norm, e), cut_pool(pool, e));
+        let (scale, m1, m2) = (&grad.scale[..e], &grad.m1[..e], &grad.m2[..e]);
         for (r, row) in y.chunks_exact_mut(e).enumerate() {
             let at = (first + r) as u32;
-            for (ch, v) in row.iter_mut().enumerate() {
-                let (dz, x_hat) = dz_at(*v, at, ch, norm, pool);
-                *v = grad.scale[ch] * (dz - grad.m1[ch] - x_hat * grad.m2[ch]);
+            for ch in 0..e {
+                let (dz, x_hat) = dz_at(row[ch], at, ch, &norm, &pool);
+                row[ch] = scale[ch] * (dz - m1[ch] - x_hat * m2[ch]);
             }
         }
     }

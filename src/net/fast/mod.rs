@@ -10,6 +10,7 @@
 //!   norm scale), and only that neighbour's slot is kept for the backward pass.
 //! - Products on the `gemm` crate over whole batches; the element-wise passes compiled for
 //!   AVX-512 / AVX2 and picked at run time; tiles of points in parallel over the batch.
+//! - The large buffers are kept between passes ([`spare`]) instead of fresh pages each time.
 //!
 //! Offers [`Kernels`] (which path a [`Network`](crate::net::Network) takes) and
 //! [`trunk::forward`] / [`trunk::backward`]; [`gemm`] also serves `partsift bench`.
@@ -21,6 +22,7 @@ pub(crate) mod embed;
 pub(crate) mod gemm;
 pub(crate) mod knn;
 pub(crate) mod simd;
+pub(crate) mod spare;
 pub(crate) mod trunk;
 
 #[cfg(test)]

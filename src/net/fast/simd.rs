@@ -90,6 +90,26 @@ macro_rules! vectorised {
 
 pub(crate) use vectorised;
 
+/// f32 values in the widest vector register (AVX-512): the kernels work on blocks of this
+/// many channels, kept in registers, and on the rest one at a time.
+pub(crate) const LANES: usize = 16;
+
+/// `W` values of `s` from `at`, as an array the compiler keeps in registers.
+///
+/// Panics if `s` is shorter than `at + W`.
+#[inline(always)]
+pub(crate) fn load<const W: usize, T: Copy>(s: &[T], at: usize) -> [T; W] {
+    *<&[T; W]>::try_from(&s[at..at + W]).expect("W values")
+}
+
+/// Writes `v` into `s` from `at`.
+///
+/// Panics if `s` is shorter than `at + W`.
+#[inline(always)]
+pub(crate) fn store<const W: usize, T: Copy>(s: &mut [T], at: usize, v: [T; W]) {
+    s[at..at + W].copy_from_slice(&v);
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -15,14 +15,15 @@ use rayon::prelude::*;
 
 use crate::net::batch::Batch;
 use crate::net::fast::edge::{
-    edge_input_grads, edge_moments, finish_edges, picks as scale_picks, scan_edges, winner_grads,
-    Affine, EdgeScratch, NormGrad, PICK_MAX,
+    edge_input_grads, edge_moments, finish_edges, scan_edges, signs, winner_grads, winner_values,
+    Affine, EdgeScratch, NormGrad,
 };
 use crate::net::fast::embed::{
     column_moments, embed_input_grads, embed_norm_sums, pool_tile, PoolGrad,
 };
 use crate::net::fast::gemm::{matmul, MatMut, MatRef, Site, Threads};
-use crate::net::fast::knn::{knn_rows, squared_norms, BLOCK_ROWS};
+use crate::net::fast::knn::{knn_rows, norms_and_columns, KnnScratch, BLOCK_ROWS};
+use crate::net::fast::spare::Spare;
 use crate::net::layers::batch_norm::{BatchNorm, Normaliser};
 use crate::net::layers::dense::Dense;
 use crate::net::layers::edge_conv::EdgeConv;
@@ -90,7 +91,7 @@ fn sum_tiles(partials: &[f64], len: usize) -> Vec<f64> {
 /// Per-thread scratch of the tile passes, kept across steps.
 #[derive(Default)]
 struct Scratch {
-    products: Vec<f32>,
+    knn: KnnScratch,
     edge: EdgeScratch,
 }
 
@@ -112,17 +113,19 @@ struct EdgeLayerCache {
     /// `[W_a - W_b; W_b]`, `2C x C_in`.
     weights: Vec<f32>,
     /// `k` per point, the point itself first.
-    neighbours: Vec<u32>,
+    neighbours: Spare<u32>,
     /// `[a b]` per point, `2C`.
-    ab: Vec<f32>,
+    ab: Spare<f32>,
     /// Per point and channel, the neighbour slot that won the maximum.
-    winners: Vec<u8>,
+    winners: Spare<u8>,
+    /// Per point and channel, the winning edge's value before batch norm.
+    y: Spare<f32>,
     norm: Normaliser,
 }
 
 struct EmbedCache {
     /// The linear part's output (`B * N x E`), batch norm's input.
-    y: Vec<f32>,
+    y: Spare<f32>,
     /// Per sample and channel, the point that won the max pooling.
     winners: Vec<u32>,
     norm: Normaliser,
@@ -134,7 +137,7 @@ pub(crate) struct FastTrunkCache {
     n: usize,
     points: Vec<f32>,
     /// Every EdgeConv layer's output side by side, `B * N x W` (the embedding's input).
-    joined: Vec<f32>,
+    joined: Spare<f32>,
     layers: Vec<EdgeLayerCache>,
     embed: EmbedCache,
 }
@@ -144,7 +147,7 @@ impl FastTrunkCache {
     #[cfg(test)]
     pub(crate) fn choices(&self) -> Choices {
         Choices {
-            neighbours: self.layers.iter().map(|l| l.neighbours.clone()).collect(),
+            neighbours: self.layers.iter().map(|l| l.neighbours.to_vec()).collect(),
             edge_winners: self
                 .layers
                 .iter()
@@ -224,7 +227,7 @@ pub(crate) fn forward_with(
     assert_eq!(points.cols, 3, "points are x y z");
     let (offsets, width) = offsets(layers);
     let tiles = tiles(samples, n);
-    let mut joined = vec![0.0f32; samples * n * width];
+    let mut joined = Spare::reused(samples * n * width);
     let mut caches = Vec::with_capacity(layers.len());
     for (l, layer) in layers.iter().enumerate() {
         let (input, stride, c_in): (&[f32], usize, usize) = if l == 0 {
@@ -233,7 +236,7 @@ pub(crate) fn forward_with(
             (&joined[offsets[l - 1]..], width, layers[l - 1].outputs())
         };
         let given_layer = given.map(|g| (&g.neighbours[l][..], &g.edge_winners[l][..]));
-        let (mut cache, min_slot) = edge_scan(
+        let mut cache = edge_scan(
             layer,
             pass,
             input,
@@ -245,23 +248,10 @@ pub(crate) fn forward_with(
             given_layer.map(|g| g.0),
         );
         if let Some((_, winners)) = given_layer {
-            for (w, &g) in cache.winners.iter_mut().zip(winners) {
-                *w = g as u8;
-            }
+            use_winners(&mut cache, winners, layer, n, &tiles);
         }
         let out = &mut joined[offsets[l]..];
-        let picks = given_layer.map(|_| vec![PICK_MAX; layer.outputs()]);
-        edge_finish(
-            layer,
-            pass.params,
-            &mut cache,
-            &min_slot,
-            out,
-            width,
-            n,
-            &tiles,
-            picks,
-        );
+        edge_finish(layer, pass.params, &cache, out, width, &tiles);
         caches.push(cache);
     }
     let (pooled, mut embed_cache) = embed_forward(embed, pass, &joined, width, samples, n, &tiles);
@@ -279,9 +269,8 @@ pub(crate) fn forward_with(
     (pooled, cache)
 }
 
-/// An EdgeConv layer up to its batch statistics: neighbours, `[a b]`, the largest and
-/// smallest `b` per point and channel; returns the cache (its winners still the largest) and
-/// the smallest slots.
+/// An EdgeConv layer up to its batch statistics: neighbours, `[a b]`, the winning edge per
+/// point and channel and its value before batch norm.
 #[allow(clippy::too_many_arguments)]
 fn edge_scan(
     layer: &EdgeConv,
@@ -293,7 +282,7 @@ fn edge_scan(
     n: usize,
     tiles: &[Tile],
     given_neighbours: Option<&[u32]>,
-) -> (EdgeLayerCache, Vec<u8>) {
+) -> EdgeLayerCache {
     let (k, c) = (layer.k, layer.outputs());
     assert!(
         layer.linear.bias.is_none(),
@@ -303,7 +292,11 @@ fn edge_scan(
     let rows = samples * n;
 
     let neighbours = match given_neighbours {
-        Some(given) => given.to_vec(),
+        Some(given) => {
+            let mut copy = Spare::reused(given.len());
+            copy.copy_from_slice(given);
+            copy
+        }
         None => find_neighbours(input, stride, c_in, samples, n, k, tiles),
     };
 
@@ -318,7 +311,7 @@ fn edge_scan(
             weights[(c + ch) * c_in + t] = wb[t];
         }
     }
-    let mut ab = vec![0.0f32; rows * 2 * c];
+    let mut ab = Spare::reused(rows * 2 * c);
     matmul(
         Site::Forward,
         MatMut::new(&mut ab, rows, 2 * c, 2 * c),
@@ -329,20 +322,21 @@ fn edge_scan(
     );
 
     let training = matches!(pass.running, Running::Update(_));
-    let mut max_slot = vec![0u8; rows * c];
-    let mut min_slot = vec![0u8; rows * c];
+    let signs = signs(layer.norm.gamma.of(pass.params));
+    let mut winners = Spare::reused(rows * c);
+    let mut y = Spare::reused(rows * c);
     let mut partials = vec![0.0f64; if training { tiles.len() * 3 * c } else { 0 }];
     let mut stats: Vec<Option<&mut [f64]>> = if training {
         partials.chunks_exact_mut(3 * c).map(Some).collect()
     } else {
         tiles.iter().map(|_| None).collect()
     };
-    tile_chunks(&mut max_slot, c, tiles)
+    tile_chunks(&mut winners, c, tiles)
         .into_par_iter()
-        .zip(tile_chunks(&mut min_slot, c, tiles))
+        .zip(tile_chunks(&mut y, c, tiles))
         .zip(stats.par_iter_mut())
         .zip(tiles)
-        .for_each(|(((mx, mn), st), t)| {
+        .for_each(|(((ws, ys), st), t)| {
             let ab_s = &ab[t.sample * n * 2 * c..(t.sample + 1) * n * 2 * c];
             let nb_s = &neighbours[t.sample * n * k..(t.sample + 1) * n * k];
             with_scratch(|s| {
@@ -352,8 +346,9 @@ fn edge_scan(
                     c,
                     k,
                     t.first,
-                    mx,
-                    mn,
+                    &signs,
+                    ws,
+                    ys,
                     st.as_deref_mut(),
                     &mut s.edge,
                 )
@@ -363,14 +358,44 @@ fn edge_scan(
     let norm = layer.norm.normaliser(pass, rows * k, || {
         edge_moments(&sum_tiles(&partials, 3 * c), c, rows, k)
     });
-    let cache = EdgeLayerCache {
+    EdgeLayerCache {
         weights,
         neighbours,
         ab,
-        winners: max_slot,
+        winners,
+        y,
         norm,
-    };
-    (cache, min_slot)
+    }
+}
+
+/// Puts `given` winning slots (`B * N * C`) into the cache, and their edges' values.
+fn use_winners(
+    cache: &mut EdgeLayerCache,
+    given: &[u32],
+    layer: &EdgeConv,
+    n: usize,
+    tiles: &[Tile],
+) {
+    let (k, c) = (layer.k, layer.outputs());
+    for (w, &g) in cache.winners.iter_mut().zip(given) {
+        *w = g as u8;
+    }
+    let EdgeLayerCache {
+        ref neighbours,
+        ref ab,
+        ref winners,
+        ref mut y,
+        ..
+    } = *cache;
+    for ((ys, ws), t) in tile_chunks(y, c, tiles)
+        .into_iter()
+        .zip(tile_slices(winners, c, tiles))
+        .zip(tiles)
+    {
+        let ab_s = &ab[t.sample * n * 2 * c..(t.sample + 1) * n * 2 * c];
+        let nb_s = &neighbours[t.sample * n * k..(t.sample + 1) * n * k];
+        winner_values(ab_s, nb_s, c, k, t.first, ws, ys);
+    }
 }
 
 /// The `k` nearest neighbours of every point in its sample's feature space.
@@ -382,59 +407,44 @@ fn find_neighbours(
     n: usize,
     k: usize,
     tiles: &[Tile],
-) -> Vec<u32> {
-    let mut norms = vec![0.0f32; samples * n];
+) -> Spare<u32> {
+    let mut norms = Spare::reused(samples * n);
+    let mut columns = Spare::reused(samples * n * c_in);
     norms
         .par_chunks_mut(n.max(1))
+        .zip(columns.par_chunks_mut((n * c_in).max(1)))
         .enumerate()
-        .for_each(|(s, out)| squared_norms(&input[s * n * stride..], n, c_in, stride, out));
-    let mut neighbours = vec![0u32; samples * n * k];
+        .for_each(|(s, (nr, cols))| {
+            norms_and_columns(&input[s * n * stride..], n, c_in, stride, nr, cols)
+        });
+    let mut neighbours = Spare::reused(samples * n * k);
     tile_chunks(&mut neighbours, k, tiles)
         .into_par_iter()
         .zip(tiles)
         .for_each(|(out, t)| {
             let x = &input[t.sample * n * stride..];
             let nr = &norms[t.sample * n..(t.sample + 1) * n];
-            with_scratch(|s| knn_rows(x, n, c_in, stride, nr, k, t.first, out, &mut s.products));
+            let cols = &columns[t.sample * n * c_in..(t.sample + 1) * n * c_in];
+            with_scratch(|s| knn_rows(x, cols, n, c_in, stride, nr, k, t.first, out, &mut s.knn));
         });
     neighbours
 }
 
-/// The layer's output into `out` (`width` values a row, starting at the layer's column) and
-/// its winners into the cache; each channel picks its winner by the sign of its scale
-/// unless `picks` says how.
-#[allow(clippy::too_many_arguments)]
+/// The layer's output into `out` (`width` values a row, starting at the layer's column).
 fn edge_finish(
     layer: &EdgeConv,
     params: &[f32],
-    cache: &mut EdgeLayerCache,
-    min_slot: &[u8],
+    cache: &EdgeLayerCache,
     out: &mut [f32],
     width: usize,
-    n: usize,
     tiles: &[Tile],
-    picks: Option<Vec<u8>>,
 ) {
-    let (k, c) = (layer.k, layer.outputs());
-    let EdgeLayerCache {
-        ref neighbours,
-        ref ab,
-        ref mut winners,
-        norm: ref normaliser,
-        ..
-    } = *cache;
-    let norm = affine(&layer.norm, params, normaliser, layer.act.slope);
-    let picks = picks.unwrap_or_else(|| scale_picks(norm.gamma));
-    tile_chunks(winners, c, tiles)
+    let c = layer.outputs();
+    let norm = affine(&layer.norm, params, &cache.norm, layer.act.slope);
+    tile_slices(&cache.y, c, tiles)
         .into_par_iter()
         .zip(row_chunks(out, width, tiles))
-        .zip(tile_slices(min_slot, c, tiles))
-        .zip(tiles)
-        .for_each(|(((ws, o), mn), t)| {
-            let ab_s = &ab[t.sample * n * 2 * c..(t.sample + 1) * n * 2 * c];
-            let nb_s = &neighbours[t.sample * n * k..(t.sample + 1) * n * k];
-            finish_edges(ab_s, nb_s, c, k, t.first, ws, mn, &picks, &norm, o, width);
-        });
+        .for_each(|(ys, o)| finish_edges(ys, c, &norm, o, width));
 }
 
 /// [`tile_chunks`] of a strided view that starts inside its first row (a column block of the
@@ -473,7 +483,7 @@ fn embed_forward(
     );
     assert_eq!(embed.linear.inputs, width, "embedding input width");
     let rows = samples * n;
-    let mut y = vec![0.0f32; rows * e];
+    let mut y = Spare::reused(rows * e);
     matmul(
         Site::Forward,
         MatMut::new(&mut y, rows, e, e),
@@ -617,34 +627,21 @@ pub(crate) fn backward(
             neighbours,
             ab,
             winners,
+            y,
             norm: normaliser,
         } = &layer_cache;
 
-        let mut dab = vec![0.0f32; rows * 2 * c];
+        let mut dab = Spare::reused(rows * 2 * c);
         let mut partials = vec![0.0f64; tiles.len() * 2 * c];
         let dout = &djoined[offsets[l]..];
         tile_chunks(&mut dab, 2 * c, &tiles)
             .into_par_iter()
             .zip(partials.par_chunks_exact_mut(2 * c))
-            .zip(tile_slices(winners, c, &tiles))
+            .zip(tile_slices(y, c, &tiles))
             .zip(&tiles)
-            .for_each(|(((d, sums), ws), t)| {
-                let ab_s = &ab[t.sample * n * 2 * c..(t.sample + 1) * n * 2 * c];
-                let nb_s = &neighbours[t.sample * n * k..(t.sample + 1) * n * k];
+            .for_each(|(((d, sums), ys), t)| {
                 let start = (t.sample * n + t.first) * width;
-                winner_grads(
-                    ab_s,
-                    nb_s,
-                    ws,
-                    c,
-                    k,
-                    t.first,
-                    &dout[start..],
-                    width,
-                    &norm,
-                    d,
-                    sums,
-                );
+                winner_grads(ys, c, &dout[start..], width, &norm, d, sums);
             });
         let sums = sum_tiles(&partials, 2 * c);
         let (dbeta, dgamma) = sums.split_at(c);
@@ -751,7 +748,7 @@ fn embed_backward(
     samples: usize,
     n: usize,
     tiles: &[Tile],
-) -> Vec<f32> {
+) -> Spare<f32> {
     let e = embed.outputs();
     assert_eq!(
         (dpooled.samples, dpooled.rows, dpooled.cols),
@@ -817,7 +814,7 @@ fn embed_backward(
             Threads::Pool,
         );
     }
-    let mut djoined = vec![0.0f32; rows * width];
+    let mut djoined = Spare::reused(rows * width);
     matmul(
         Site::InputGrad,
         MatMut::new(&mut djoined, rows, width, width),
