@@ -8,7 +8,9 @@ use std::path::{Path, PathBuf};
 
 use rayon::prelude::*;
 
-use partsift::learn::{self, PreparedCache, ScanOutcome, TrainEvent, TrainSettings, TrainedModel};
+use partsift::learn::{
+    self, CancelToken, PreparedCache, ScanOutcome, TrainEvent, TrainSettings, TrainedModel,
+};
 use partsift::net::{Arch, Preset};
 use partsift::prep::{Fate, Frame, Prepared, RecipeSettings};
 use partsift::scan::{self, PointCloud};
@@ -28,7 +30,6 @@ use super::AppError;
 pub(crate) struct LoadedModel {
     /// Shown in the status bar: the file name, or "taught on <bin>" for an unsaved model.
     pub(crate) name: String,
-    pub(crate) part_types: Vec<String>,
     /// Architecture, preset, epochs, holdout accuracy, review threshold: one line each.
     pub(crate) summary: Vec<String>,
     pub(crate) trained: TrainedModel,
@@ -38,10 +39,13 @@ impl LoadedModel {
     pub(crate) fn new(name: String, trained: TrainedModel) -> Self {
         LoadedModel {
             name,
-            part_types: trained.part_types().to_vec(),
             summary: summary_lines(&trained),
             trained,
         }
+    }
+
+    pub(crate) fn part_types(&self) -> &[String] {
+        self.trained.part_types()
     }
 }
 
@@ -541,14 +545,14 @@ pub(crate) fn evaluate(
 /// The verdicts on scan files, in the order given, classified in parallel. A file that cannot
 /// be read or cleaned up gets its error. Files not started when the job is cancelled are left
 /// out.
-pub(crate) fn classify<T>(
+pub(crate) fn classify(
     paths: &[PathBuf],
     model: &LoadedModel,
-    report: &Reporter<T>,
+    cancel: &CancelToken,
 ) -> Vec<Result<Verdict, AppError>> {
     model
         .trained
-        .classify_files(paths, &|_, _| {}, report.cancel_token())
+        .classify_files(paths, &|_, _| {}, cancel)
         .into_iter()
         .map(|row| match row.outcome {
             ClassifyOutcome::Verdict(v) => Ok(app_verdict(&v)),

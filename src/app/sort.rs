@@ -142,7 +142,7 @@ impl SortTab {
                 if r.is_cancelled() {
                     break;
                 }
-                let outcomes = backend::classify(chunk, &model, r);
+                let outcomes = backend::classify(chunk, &model, r.cancel_token());
                 for (path, outcome) in chunk.iter().zip(outcomes) {
                     let path = path.clone();
                     if !r.send(SortEvent::Row(SortRow { path, outcome })) {

@@ -558,7 +558,7 @@ fn model_row(ui: &mut egui::Ui, shared: &mut Shared) -> Option<(Arc<LoadedModel>
         Some(m) => {
             ui.strong(format!("Model: {}", m.name));
             ui.weak(m.summary.join(" · "));
-            ui.weak(format!("types: {}", m.part_types.join(", ")));
+            ui.weak(format!("types: {}", m.part_types().join(", ")));
         }
         None => {
             ui.weak("No model yet.");

@@ -719,7 +719,7 @@ fn teaching_on_a_small_bin_keeps_a_model_and_its_holdout_review() {
     assert_eq!(app.teach.error(), None);
     assert_eq!(app.teach.epochs_seen(), 2);
     let model = app.session.model.as_ref().expect("the taught model");
-    assert_eq!(model.part_types, SMALL_BIN_TYPES);
+    assert_eq!(model.part_types(), SMALL_BIN_TYPES);
     assert!(model.name.contains("taught on"), "{}", model.name);
     let review = app.review.evaluation_shown().expect("holdout review");
     assert!(review.scans_from.contains("holdout"));
@@ -730,7 +730,7 @@ fn teaching_on_a_small_bin_keeps_a_model_and_its_holdout_review() {
     let file = bin.join("model.safetensors");
     backend::save_model(model, &file).unwrap();
     let opened = backend::open_model(&file).unwrap();
-    assert_eq!(opened.part_types, model.part_types);
+    assert_eq!(opened.part_types(), model.part_types());
     assert_eq!(opened.name, "model.safetensors");
     std::fs::write(&file, b"not a model").unwrap();
     let err = backend::open_model(&file).unwrap_err().to_string();
