@@ -6,7 +6,7 @@
 //! cargo run --release --no-default-features --example compare_training -- \
 //!     TRAIN_BIN TEST_BIN [--optimizer sgd|adam] [--no-size] [--preset quick|full]
 //!     [--arch edgeconv|pointnet|gcn] [--epochs N] [--batch N] [--patience N] [--seed S]
-//!     [--no-augment]
+//!     [--no-augment] [--max-turn-deg D] [--max-dropout F] [--no-facing]
 //! ```
 //! Prints one line per epoch on standard error and one JSON object on standard output.
 
@@ -29,6 +29,11 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
             "--optimizer" => settings.optimizer = FromStr::from_str(&value()?)?,
             "--no-size" => settings.size_aware = false,
             "--no-augment" => settings.augmentation = Augmentation::NONE,
+            "--max-turn-deg" => {
+                settings.augmentation.max_turn = value()?.parse::<f32>()?.to_radians()
+            }
+            "--max-dropout" => settings.augmentation.max_dropout = value()?.parse()?,
+            "--no-facing" => settings.recipe.face_long_side = false,
             "--preset" => settings.preset = FromStr::from_str(&value()?)?,
             "--arch" => settings.arch = FromStr::from_str(&value()?)?,
             "--epochs" => settings.epochs = value()?.parse()?,
@@ -39,13 +44,16 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         }
     }
     let described = format!(
-        "{} {} {} size_aware={} batch={} augment={}",
+        "{} {} {} size_aware={} batch={} augment={} max_turn_deg={:.0} max_dropout={} facing={}",
         settings.arch,
         settings.preset,
         settings.optimizer.name(),
         settings.size_aware,
         settings.batch_size,
-        settings.augmentation != Augmentation::NONE
+        settings.augmentation != Augmentation::NONE,
+        settings.augmentation.max_turn.to_degrees(),
+        settings.augmentation.max_dropout,
+        settings.recipe.face_long_side,
     );
     let plan = settings.check()?;
     let cache = PreparedCache::at_default_location();

@@ -121,6 +121,12 @@ pub(crate) fn rotate(r: &[[f32; 3]; 3], p: [f32; 3]) -> [f32; 3] {
     [dot(r[0], p), dot(r[1], p), dot(r[2], p)]
 }
 
+/// The row-major product `a · b`: `b` first, then `a`.
+pub(crate) fn compose(a: &[[f32; 3]; 3], b: &[[f32; 3]; 3]) -> [[f32; 3]; 3] {
+    let column = |j: usize| [b[0][j], b[1][j], b[2][j]];
+    a.map(|row| [0, 1, 2].map(|j| dot(row, column(j))))
+}
+
 /// Convex hull, counter-clockwise, by Andrew's monotone chain (1979); collinear points
 /// dropped. Sorts `points`.
 pub(crate) fn convex_hull(points: &mut [[f64; 2]]) -> Vec<[f64; 2]> {

@@ -12,7 +12,7 @@
 //! 4. keep the part: the largest Euclidean cluster, with nearby pieces of it joined
 //!    (`cluster.rs`);
 //! 5. even density: voxel centroids (`density.rs`), farthest point sampling (`sample.rs`);
-//! 6. centre, scale to unit radius, measure (`size.rs`).
+//! 6. centre, measure, turn the footprint's long side to +X, scale to unit radius (`size.rs`).
 //!
 //! Every distance is derived from the measured point spacing unless set in mm, so the
 //! defaults fit dense and sparse scans, in any units once converted to mm. The step
@@ -66,7 +66,8 @@ pub enum Fate {
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Prepared {
     /// `recipe.points()` points, centred at their centroid, scaled to unit radius (the
-    /// farthest point at distance 1), table normal +Z. Dimensionless.
+    /// farthest point at distance 1), table normal +Z, the footprint's long side along X
+    /// (when the recipe faces it). Dimensionless.
     pub points: Vec<[f32; 3]>,
     /// The true size of the part, mm.
     pub size: PartSize,
@@ -84,7 +85,8 @@ pub struct Prepared {
 /// `prepared = (rotation · p + translation_mm) * scale`.
 #[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Frame {
-    /// Row-major rotation turning the table normal to +Z (identity without a table).
+    /// Row-major rotation turning the table normal to +Z (none without a table), then the
+    /// footprint's long side to +X (when the recipe asks for it).
     pub rotation: [[f32; 3]; 3],
     pub translation_mm: [f32; 3],
     /// 1 / radius in mm (1 for a part of radius 0).
@@ -109,6 +111,8 @@ pub enum PrepError {
     #[error("the crop box leaves no points (of {0})")]
     CropLeavesNothing(usize),
 }
+
+const IDENTITY: [[f32; 3]; 3] = [[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]];
 
 /// The fixed seed of the RANSAC plane search: the same scan always gives the same result.
 const RANSAC_SEED: u64 = 0x7AB1E;
@@ -155,7 +159,7 @@ impl Recipe {
         let scan_spacing_mm = measure_spacing(&points);
 
         // 2. table plane
-        let mut rotation = [[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]];
+        let mut rotation = IDENTITY;
         let mut lift = [0.0f32; 3];
         let plane_report = if s.table_plane {
             let search = TableSearchSettings {
@@ -280,16 +284,23 @@ impl Recipe {
         }
         counts.padded = padded;
 
-        // 6. centre, measure, unit radius
+        // 6. centre, measure, face +X, unit radius
         let unique_points: Vec<[f32; 3]> =
             picked[..unique].iter().map(|&i| even[i as usize]).collect();
-        let (centre, size) = size::measure(&unique_points).unwrap_or((
-            [0.0; 3],
-            PartSize {
+        let measured = size::measure(&unique_points).unwrap_or(size::Measured {
+            centre: [0.0; 3],
+            size: PartSize {
                 radius_mm: 0.0,
                 extents_mm: [0.0; 3],
             },
-        ));
+            long_side: [1.0, 0.0],
+        });
+        let (centre, size) = (measured.centre, measured.size);
+        let facing = if s.face_long_side {
+            size::facing_turn(&unique_points, &measured)
+        } else {
+            IDENTITY
+        };
         let scale = if size.radius_mm > 0.0 {
             1.0 / size.radius_mm
         } else {
@@ -299,12 +310,13 @@ impl Recipe {
             .iter()
             .map(|&i| {
                 let p = even[i as usize];
-                [0, 1, 2].map(|a| (p[a] - centre[a]) * scale)
+                let q = rotate(&facing, [0, 1, 2].map(|a| p[a] - centre[a]));
+                q.map(|v| v * scale)
             })
             .collect();
         let frame = Frame {
-            rotation,
-            translation_mm: [0, 1, 2].map(|a| lift[a] - centre[a]),
+            rotation: geom::compose(&facing, &rotation),
+            translation_mm: rotate(&facing, [0, 1, 2].map(|a| lift[a] - centre[a])),
             scale,
         };
         let report = Report {

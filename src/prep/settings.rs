@@ -51,6 +51,11 @@ pub struct RecipeSettings {
     pub voxel_size_mm: Option<f32>,
     /// The voxel edge in point spacings when `voxel_size_mm` is `None` (0.5 to 20).
     pub voxel_size_spacings: f32,
+    /// Turn the prepared cloud about the up axis so that the long side of the part's
+    /// footprint lies along X, its heavier end on +X. A model file without this setting was
+    /// taught without the turn, so a missing value reads as `false`.
+    #[serde(default)]
+    pub face_long_side: bool,
 }
 
 impl Default for RecipeSettings {
@@ -70,6 +75,7 @@ impl Default for RecipeSettings {
             second_cluster_warn_fraction: 0.25,
             voxel_size_mm: None,
             voxel_size_spacings: 1.5,
+            face_long_side: true,
         }
     }
 }
@@ -213,7 +219,7 @@ impl From<Recipe> for RecipeSettings {
 }
 
 /// Bump when a step changes what it computes, so cached prepared clouds are remade.
-const ALGORITHM_VERSION: &str = "partsift-recipe-2";
+const ALGORITHM_VERSION: &str = "partsift-recipe-3";
 
 impl Recipe {
     pub fn settings(&self) -> &RecipeSettings {
