@@ -270,6 +270,15 @@ mod tests {
     }
 
     #[test]
+    fn a_recipe_written_before_the_facing_step_reads_without_it() {
+        let mut old = serde_json::to_value(RecipeSettings::default()).unwrap();
+        old.as_object_mut().unwrap().remove("face_long_side");
+        let read: RecipeSettings = serde_json::from_value(old).unwrap();
+        assert!(!read.face_long_side);
+        assert!(RecipeSettings::default().face_long_side);
+    }
+
+    #[test]
     fn too_few_or_too_many_points_are_rejected() {
         assert_eq!(rejected(|s| s.points = 0), "points");
         assert_eq!(rejected(|s| s.points = 15), "points");
