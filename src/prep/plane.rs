@@ -168,8 +168,9 @@ pub(crate) struct TableSearchSettings {
 }
 
 /// Planes tried before giving up: the table is the largest plane unless a face of the part
-/// is larger, so a second and third try finds it under a big flat part.
-const PLANE_TRIES: usize = 3;
+/// is larger, so later tries find it under a big flat part, or round a close-up hex nut whose
+/// end face and three flats each hold more points than the table band around it.
+const PLANE_TRIES: usize = 5;
 /// A table has (nearly) nothing below it: range noise past 3 standard deviations, a few
 /// reflections. A plane with more than this share of the scan on its far side is a wall of
 /// the part (a bracket's upright flange) with the table on both sides.

@@ -26,8 +26,12 @@ pub struct SensorSettings {
     pub width_px: u32,
     /// Image height, pixels.
     pub height_px: u32,
-    /// Distance from the camera to the part's centre, mm.
+    /// The sensor's working range: distance from the camera to the part's centre, mm.
     pub distance_mm: [f64; 2],
+    /// Distance as a multiple of the part's bounding radius, clamped to `distance_mm`: an
+    /// inspector brings the sensor closer to a small part, so a washer's thickness stands out
+    /// of the depth noise as a bracket's legs do.
+    pub distance_per_radius: [f64; 2],
     /// Angle between the optical axis and the downward vertical, degrees.
     pub tilt_deg: [f64; 2],
     /// Largest roll of the camera about its optical axis, degrees (drawn in +-).
@@ -56,7 +60,8 @@ impl Default for SensorSettings {
         SensorSettings {
             width_px: 640,
             height_px: 480,
-            distance_mm: [250.0, 600.0],
+            distance_mm: [150.0, 600.0],
+            distance_per_radius: [8.0, 20.0],
             tilt_deg: [25.0, 60.0],
             max_roll_deg: 15.0,
             part_coverage: [0.05, 0.12],
@@ -103,13 +108,20 @@ impl SensorSettings {
                 return bad(name, side.to_string(), "16 to 4096 pixels");
             }
         }
-        let checks: [(&'static str, [f64; 2], f64, f64, &'static str); 4] = [
+        let checks: [(&'static str, [f64; 2], f64, f64, &'static str); 5] = [
             (
                 "distance_mm",
                 self.distance_mm,
                 50.0,
                 5000.0,
                 "lo <= hi within 50 to 5000 mm",
+            ),
+            (
+                "distance_per_radius",
+                self.distance_per_radius,
+                2.0,
+                1000.0,
+                "lo <= hi within 2 to 1000 radii",
             ),
             (
                 "tilt_deg",
@@ -250,7 +262,10 @@ pub(crate) fn capture(part: &Part, settings: &SensorSettings, rng: &mut Rng) -> 
         .range(settings.tilt_deg[0], settings.tilt_deg[1])
         .to_radians();
     let azimuth = rng.range(0.0, std::f64::consts::TAU);
-    let distance = rng.range(settings.distance_mm[0], settings.distance_mm[1]);
+    let [near, far] = settings
+        .distance_per_radius
+        .map(|k| (k * radius).clamp(settings.distance_mm[0], settings.distance_mm[1]));
+    let distance = rng.range(near, far);
     let roll = rng
         .range(-settings.max_roll_deg, settings.max_roll_deg)
         .to_radians();
@@ -887,10 +902,13 @@ mod tests {
     #[test]
     fn each_bad_setting_is_refused_by_name() {
         type Spoil = fn(&mut SensorSettings);
-        let cases: [(&str, Spoil); 12] = [
+        let cases: [(&str, Spoil); 13] = [
             ("width_px", |s| s.width_px = 0),
             ("height_px", |s| s.height_px = 100_000),
             ("distance_mm", |s| s.distance_mm = [600.0, 250.0]),
+            ("distance_per_radius", |s| {
+                s.distance_per_radius = [1.0, 20.0]
+            }),
             ("tilt_deg", |s| s.tilt_deg = [0.0, 60.0]),
             ("part_coverage", |s| s.part_coverage = [0.1, f64::NAN]),
             ("table_margin", |s| s.table_margin = [0.0, 0.2]),
