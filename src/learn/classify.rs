@@ -13,6 +13,7 @@ use crate::learn::bin::{is_plain_visible_name, move_into};
 use crate::learn::dataset::SkippedScan;
 use crate::learn::model::TrainedModel;
 use crate::learn::progress::CancelToken;
+use crate::learn::views::mirror_averaged_scores;
 use crate::prep::{Fate, PrepError, Prepared};
 use crate::scan::{self, LoadOptions, PointCloud};
 use crate::verdict::{ClassifyOutcome, ClassifyRow, Status, Verdict, VerdictError};
@@ -56,7 +57,8 @@ pub enum InspectError {
 
 impl TrainedModel {
     /// Cleans `cloud_mm` (positions in mm, any frame) with the model's recipe, runs the
-    /// network in evaluation mode and makes the calibrated verdict. Deterministic.
+    /// network in evaluation mode on the prepared cloud and its mirror image (see
+    /// `learn/views.rs`) and makes the calibrated verdict. Deterministic.
     ///
     /// Errors: the clean-up finds no usable point, or the network's scores are not finite.
     pub fn inspect(&self, cloud_mm: &PointCloud) -> Result<Inspection, InspectError> {
@@ -70,7 +72,7 @@ impl TrainedModel {
     /// the network's scores are not finite.
     pub fn judge(&self, prepared: Prepared) -> Result<Inspection, InspectError> {
         let (points, size) = self.network_input(&prepared)?;
-        let logits = self.network().infer(&points, &size);
+        let logits = mirror_averaged_scores(self.network(), &points, &size);
         let verdict = Verdict::from_logits(&logits, self.part_types(), self.calibration())?;
         let class = self
             .part_types()
@@ -89,7 +91,8 @@ impl TrainedModel {
     /// al. 2019 ("PointCloud Saliency Maps"): `r^2 dS/dr`, the gain in the class score `S`
     /// from moving a point out from the centre, times its distance `r` from the centre
     /// squared; points that argue against the class get 0. One backward pass through the
-    /// network; no gradient flows through the choice of neighbours.
+    /// network on the cloud as prepared (not its mirror image); no gradient flows through the
+    /// choice of neighbours.
     ///
     /// Panics if `class` is not below the number of part types.
     pub fn saliency(&self, inspection: &Inspection, class: usize) -> Vec<f32> {

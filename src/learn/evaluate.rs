@@ -8,6 +8,7 @@ use crate::learn::dataset::{Dataset, DatasetError, SkippedScan};
 use crate::learn::metrics::{Evaluation, LabelOutOfRange, ScanOutcome};
 use crate::learn::model::TrainedModel;
 use crate::learn::progress::{CancelToken, TrainEvent};
+use crate::learn::views::mirror_averaged_scores;
 use crate::verdict::softmax;
 
 /// The outcome of evaluating a model on a parts bin.
@@ -121,7 +122,7 @@ impl TrainedModel {
 fn infer_all(model: &TrainedModel, dataset: &Dataset) -> Result<Vec<f32>, EvaluateError> {
     check_recipe(model, dataset)?;
     let (points, sizes) = dataset.all();
-    Ok(model.network().infer(points, sizes))
+    Ok(mirror_averaged_scores(model.network(), points, sizes))
 }
 
 fn check_recipe(model: &TrainedModel, dataset: &Dataset) -> Result<(), EvaluateError> {

@@ -40,6 +40,7 @@ mod model;
 mod progress;
 mod split;
 mod train;
+pub(crate) mod views;
 
 pub use augment::Augmentation;
 pub use bin::{

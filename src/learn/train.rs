@@ -16,6 +16,7 @@ use crate::learn::metrics::ScanOutcome;
 use crate::learn::model::TrainedModel;
 use crate::learn::progress::{CancelToken, EtaEstimator, TrainEvent};
 use crate::learn::split::{holdout_split, HoldoutShareError, DEFAULT_HOLDOUT};
+use crate::learn::views::mirror_averaged_scores;
 use crate::net::{
     cosine_lr, smoothed_cross_entropy, Arch, NetConfig, Network, Optimizer, OptimizerKind, Preset,
 };
@@ -389,7 +390,8 @@ pub fn train_on(
             break;
         };
         trainer.refresh_statistics(&mut network, &mut epoch_rng);
-        let logits = network.infer(&trainer.holdout_points, &trainer.holdout_sizes);
+        let logits =
+            mirror_averaged_scores(&network, &trainer.holdout_points, &trainer.holdout_sizes);
         if !train_loss.is_finite() || logits.iter().any(|z| !z.is_finite()) {
             ended = RunEnd::Diverged;
             break;

@@ -219,7 +219,7 @@ impl From<Recipe> for RecipeSettings {
 }
 
 /// Bump when a step changes what it computes, so cached prepared clouds are remade.
-const ALGORITHM_VERSION: &str = "partsift-recipe-3";
+const ALGORITHM_VERSION: &str = "partsift-recipe-4";
 
 impl Recipe {
     pub fn settings(&self) -> &RecipeSettings {
