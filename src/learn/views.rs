@@ -14,15 +14,22 @@ use crate::net::Network;
 ///
 /// Panics as [`Network::infer`].
 pub(crate) fn mirror_averaged_scores(network: &Network, points: &[f32], sizes: &[f32]) -> Vec<f32> {
-    let mirrored: Vec<f32> = points
-        .chunks_exact(3)
-        .flat_map(|p| [p[0], -p[1], p[2]])
-        .collect();
     let mut scores = network.infer(points, sizes);
-    for (s, m) in scores.iter_mut().zip(network.infer(&mirrored, sizes)) {
+    for (s, m) in scores
+        .iter_mut()
+        .zip(network.infer(&mirrored_across_xz(points), sizes))
+    {
         *s = 0.5 * (*s + m);
     }
     scores
+}
+
+/// Flat `x y z` points with every `y` negated.
+fn mirrored_across_xz(points: &[f32]) -> Vec<f32> {
+    points
+        .chunks_exact(3)
+        .flat_map(|p| [p[0], -p[1], p[2]])
+        .collect()
 }
 
 #[cfg(test)]
@@ -44,10 +51,7 @@ mod tests {
         let n = network.points();
         let points: Vec<f32> = (0..2 * n * 3).map(|_| rng.normal() as f32).collect();
         let sizes = [1.0, 0.5, 0.2, 0.1, 2.0, 1.0, 0.4, 0.3];
-        let mirrored: Vec<f32> = points
-            .chunks_exact(3)
-            .flat_map(|p| [p[0], -p[1], p[2]])
-            .collect();
+        let mirrored = mirrored_across_xz(&points);
         let scores = mirror_averaged_scores(&network, &points, &sizes);
         assert_eq!(scores.len(), 2 * 3);
         for (a, b) in scores
